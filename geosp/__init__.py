@@ -1,0 +1,3 @@
+"""geosp: self-potential survey reduction and fault-source interpretation."""
+
+__version__ = "0.1.0"
