@@ -1,0 +1,1106 @@
+"""
+Per-segment inversion of SP stations for fault-patch sources, with uncertainties.
+
+For each detected fault segment, :func:`fit_segment` fits competing models
+to the stations of the segment's corridor (no source, one patch, two patches
+along strike, a shallow pole pair), picks one by BIC and reports the chosen
+sources as rows of the ``sources`` layer. :func:`fit_segments` fits every
+segment (serially, over processes or on a Dask cluster) and re-solves all
+accepted source strengths jointly with one regional plane.
+
+Conventions are those of ``contract.md``: ``jump_mv`` is the dip-direction
+side minus the other side; strike is clockwise from grid north, dip toward
+strike + 90°.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from dataclasses import replace
+from functools import partial
+
+import numpy as np
+import pandas as pd
+from scipy import optimize
+from scipy.spatial import cKDTree
+from scipy.stats import qmc
+
+from . import physics
+from .errors import InputError, OptionError
+from .models import FitResult, SegmentFit
+from .parallel import item_seed, map_segments
+
+logger = logging.getLogger(__name__)
+
+_MODELS = ("fault_patch", "two_patches", "pole_pair")
+_UNCERTAINTY = ("jacobian", "profile", "mcmc")
+_HUBER_C = 1.345  # Huber (1964) tuning constant: 95 % efficiency for Gaussian noise
+_REGIONAL_SCALE = 1000.0  # regional slopes are solved per km for conditioning
+_POLE_MAX_DEPTH = 50.0  # m, "shallow" pole pair (physics.md §3, common practice)
+_POLE_MAX_SEPARATION = 200.0  # m
+_SOURCE_FIELDS = (
+    "source_id", "fault_id", "segment_id", "model", "top_x", "top_y", "strike_deg", "dip_deg",
+    "dip_dir_deg", "top_depth_m", "bottom_depth_m", "length_m", "jump_mv", "top_depth_lo_m",
+    "top_depth_hi_m", "jump_lo_mv", "jump_hi_mv", "rms_mv", "chi2_red", "n_stations",
+    "bic_gain", "sigma_ratio", "flags",
+)
+
+
+# --------------------------------------------------------------------------------------
+# Forward models used by the fit (the physics lives in geosp.physics)
+# --------------------------------------------------------------------------------------
+
+def _pole_pair_local(along, across, pos, neg):
+    """Unit-strength pole pair, 1/r+ − 1/r− (1/m), in the local frame [Telford1990]_."""
+    if hasattr(physics, "pole_pair_sp"):
+        return physics.pole_pair_sp(
+            (along, across), pos_x=pos[0], pos_y=pos[1], pos_depth_m=pos[2],
+            neg_x=neg[0], neg_y=neg[1], neg_depth_m=neg[2], k_mv_m=1.0,
+        )
+    r_pos = np.sqrt((along - pos[0]) ** 2 + (across - pos[1]) ** 2 + pos[2] ** 2)
+    r_neg = np.sqrt((along - neg[0]) ** 2 + (across - neg[1]) ** 2 + neg[2] ** 2)
+    return 1.0 / r_pos - 1.0 / r_neg
+
+
+# --------------------------------------------------------------------------------------
+# Models: parameter layout, bounds and basis functions
+# --------------------------------------------------------------------------------------
+
+class _Model:
+    """
+    One candidate model in transformed nonlinear parameters ``p``.
+
+    Patch models: per patch (s_c, log L, log z_t, log(z_b − z_t)), then the
+    shared dip δ′ (degrees, from the +t side), then optionally the trace
+    offset Δt (m) and log of the lobe ratio. Pole pair: (s+, t+, log z+,
+    Δs, Δt, log z−). The linear parameters are one strength per column of
+    the basis, then the regional plane (c0, c_s, c_t).
+    """
+
+    def __init__(self, name, data, bounds):
+        self.name = name
+        self.data = data
+        b = bounds
+        names, lower, upper = [], [], []
+        if name in ("fault_patch", "two_patches"):
+            self.n_patches = 1 if name == "fault_patch" else 2
+            for j in range(self.n_patches):
+                names += [f"centre{j}", f"log_length{j}", f"log_top{j}", f"log_height{j}"]
+                lower += [b["centre"][0], np.log(b["length"][0]), np.log(b["top"][0]),
+                          np.log(b["height"][0])]
+                upper += [b["centre"][1], np.log(b["length"][1]), np.log(b["top"][1]),
+                          np.log(b["height"][1])]
+            names.append("dip")
+            lower.append(b["dip"][0])
+            upper.append(b["dip"][1])
+            self.offset_index = self.ratio_index = None
+            if b["offset"] > 0:
+                self.offset_index = len(names)
+                names.append("trace_offset")
+                lower.append(-b["offset"])
+                upper.append(b["offset"])
+            if b["fit_ratio"]:
+                self.ratio_index = len(names)
+                names.append("log_ratio")
+                lower.append(np.log(0.1))
+                upper.append(np.log(10.0))
+            self.n_columns = self.n_patches
+        elif name == "pole_pair":
+            self.n_patches = 0
+            zlo, zhi = np.log(b["pole_depth"][0]), np.log(b["pole_depth"][1])
+            sep = _POLE_MAX_SEPARATION / np.sqrt(2.0)
+            names = ["pos_s", "pos_t", "log_pos_depth", "sep_s", "sep_t", "log_neg_depth"]
+            lower = [b["s_span"][0], b["t_span"][0], zlo, -sep, -sep, zlo]
+            upper = [b["s_span"][1], b["t_span"][1], zhi, sep, sep, zhi]
+            self.n_columns = 1
+        else:  # "none": regional plane only
+            self.n_patches = 0
+            self.n_columns = 0
+        self.names = names
+        self.lower = np.array(lower, dtype=float)
+        self.upper = np.array(upper, dtype=float)
+        self.k_nonlinear = len(names)
+        self.k = self.k_nonlinear + self.n_columns + 3
+
+    # natural parameters ---------------------------------------------------------------
+    def patches(self, p):
+        """List of dicts (centre, length, top, bottom) plus dip, offset, ratio."""
+        out = []
+        for j in range(self.n_patches):
+            c, log_l, log_t, log_h = p[4 * j:4 * j + 4]
+            top = np.exp(log_t)
+            out.append({"centre": c, "length": np.exp(log_l), "top": top,
+                        "bottom": top + np.exp(log_h)})
+        dip = p[4 * self.n_patches]
+        offset = p[self.offset_index] if self.offset_index is not None else 0.0
+        ratio = np.exp(p[self.ratio_index]) if self.ratio_index is not None else 1.0
+        return out, dip, offset, ratio
+
+    def basis(self, p, along=None, across=None):
+        """Unit-strength columns (n, n_columns) at the stations (or given local points)."""
+        along = self.data["s"] if along is None else along
+        across = self.data["t"] if across is None else across
+        if self.name == "pole_pair":
+            pos = (p[0], p[1], np.exp(p[2]))
+            neg = (p[0] + p[3], p[1] + p[4], np.exp(p[5]))
+            self.data["counter"][0] += 1
+            return _pole_pair_local(along, across, pos, neg)[:, None]
+        if self.n_columns == 0:
+            return np.zeros((along.size, 0))
+        patches, dip, offset, ratio = self.patches(p)
+        cols = []
+        for patch in patches:
+            self.data["counter"][0] += 1
+            cols.append(physics.patch_sp_local(
+                along, across - offset, centre_m=patch["centre"], length_m=patch["length"],
+                depth_top_m=patch["top"], depth_bottom_m=patch["bottom"], dip_deg=dip,
+                jump_mv=1.0, sigma_ratio=ratio,
+            ))
+        return np.column_stack(cols)
+
+    def basis_jacobian(self, p, g0=None):
+        """∂(basis)/∂p by forward differences in the transformed parameters, (n, m, k)."""
+        g0 = self.basis(p) if g0 is None else g0
+        jac = np.empty(g0.shape + (self.k_nonlinear,))
+        span = self.upper - self.lower
+        for i in range(self.k_nonlinear):
+            step = 1e-6 * max(span[i], 1e-3)
+            q = p.copy()
+            # step away from the nearer bound so that q stays feasible
+            if q[i] + step > self.upper[i]:
+                step = -step
+            q[i] += step
+            jac[:, :, i] = (self.basis(q) - g0) / step
+        return jac
+
+    def natural_transform(self, p):
+        """Matrix T (n_natural, k_nonlinear): ∂natural/∂p, natural in the order of ``natural_names``."""
+        k = self.k_nonlinear
+        if self.name == "pole_pair":
+            t = np.eye(k)
+            t[2, 2] = np.exp(p[2])
+            t[5, 5] = np.exp(p[5])
+            return t
+        rows = []
+        for j in range(self.n_patches):
+            c, log_l, log_t, log_h = p[4 * j:4 * j + 4]
+            for which in range(4):
+                row = np.zeros(k)
+                if which == 0:
+                    row[4 * j] = 1.0
+                elif which == 1:
+                    row[4 * j + 1] = np.exp(log_l)
+                elif which == 2:
+                    row[4 * j + 2] = np.exp(log_t)
+                else:  # bottom = exp(log_t) + exp(log_h)
+                    row[4 * j + 2] = np.exp(log_t)
+                    row[4 * j + 3] = np.exp(log_h)
+                rows.append(row)
+        for i in range(4 * self.n_patches, k):
+            row = np.zeros(k)
+            row[i] = np.exp(p[i]) if i == self.ratio_index else 1.0
+            rows.append(row)
+        return np.array(rows)
+
+    @property
+    def natural_names(self):
+        if self.name == "pole_pair":
+            return ["pos_s_m", "pos_t_m", "pos_depth_m", "sep_s_m", "sep_t_m", "neg_depth_m"]
+        names = []
+        for j in range(self.n_patches):
+            names += [f"centre_m[{j}]", f"length_m[{j}]", f"top_depth_m[{j}]",
+                      f"bottom_depth_m[{j}]"]
+        names.append("dip_deg")
+        if self.offset_index is not None:
+            names.append("trace_offset_m")
+        if self.ratio_index is not None:
+            names.append("sigma_ratio")
+        if self.n_patches == 1:
+            names = [n.replace("[0]", "") for n in names]
+        return names
+
+    @property
+    def linear_names(self):
+        if self.name == "pole_pair":
+            names = ["pole_k_mv_m"]
+        elif self.n_patches == 1:
+            names = ["jump_mv"]
+        else:
+            names = [f"jump_mv[{j}]" for j in range(self.n_columns)]
+        return names + ["regional_mv", "regional_s_mv_per_km", "regional_t_mv_per_km"]
+
+
+# --------------------------------------------------------------------------------------
+# Variable projection
+# --------------------------------------------------------------------------------------
+
+class _Problem:
+    """Weighted data, variable projection and optimisation for one model."""
+
+    def __init__(self, model, data, sw):
+        self.model = model
+        self.data = data
+        self.sw = sw  # sqrt of the weights, (n,)
+        self.dw = data["d"] * sw
+        self.regional_w = data["regional"] * sw[:, None]
+
+    def solve(self, p, fixed=None):
+        """
+        Linear parameters for ``p`` by weighted least squares.
+
+        ``fixed`` = (column, value) holds one source strength fixed (profile of
+        a jump). Returns (x, weighted residual, basis, weighted design).
+        """
+        g = self.model.basis(p)
+        aw = np.hstack([g * self.sw[:, None], self.regional_w])
+        rhs = self.dw
+        if fixed is not None:
+            col, value = fixed
+            rhs = rhs - value * aw[:, col]
+            free = np.delete(np.arange(aw.shape[1]), col)
+            xf = np.linalg.lstsq(aw[:, free], rhs, rcond=None)[0]
+            x = np.empty(aw.shape[1])
+            x[free] = xf
+            x[col] = value
+            return x, self.dw - aw @ x, g, aw
+        x = np.linalg.lstsq(aw, rhs, rcond=None)[0]
+        return x, self.dw - aw @ x, g, aw
+
+    def residual(self, p, fixed=None):
+        return self.solve(p, fixed)[1]
+
+    def cost(self, p, fixed=None):
+        r = self.residual(p, fixed)
+        return float(r @ r)
+
+    def kaufman_jacobian(self, p, fixed=None, free=None):
+        """Kaufman (1975) approximation −Π⊥ W½ (∂A/∂θ) x̂ of the reduced Jacobian."""
+        x, _, g, aw = self.solve(p, fixed)
+        dg = self.model.basis_jacobian(p, g)  # (n, m, k)
+        m = self.model.n_columns
+        v = np.einsum("nmk,m->nk", dg, x[:m]) * self.sw[:, None]
+        cols = np.arange(aw.shape[1])
+        if fixed is not None:
+            cols = np.delete(cols, fixed[0])
+        q, _ = np.linalg.qr(aw[:, cols])
+        jac = -(v - q @ (q.T @ v))
+        return jac if free is None else jac[:, free]
+
+    def local_fit(self, p0, *, fixed=None, hold=None, max_nfev=200):
+        """
+        TRF from ``p0`` within the bounds; ``hold`` = (index, value) fixes one
+        nonlinear parameter (profile likelihood). Returns (p, cost).
+        """
+        lower, upper = self.model.lower, self.model.upper
+        free = np.arange(self.model.k_nonlinear)
+        p_base = np.array(p0, dtype=float)
+        if hold is not None:
+            p_base[hold[0]] = hold[1]
+            free = np.delete(free, hold[0])
+        if free.size == 0:
+            return p_base, self.cost(p_base, fixed)
+
+        def full(z):
+            p = p_base.copy()
+            p[free] = z
+            return p
+
+        span = upper[free] - lower[free]
+        z0 = np.clip(p_base[free], lower[free] + 1e-9 * span, upper[free] - 1e-9 * span)
+        result = optimize.least_squares(
+            lambda z: self.residual(full(z), fixed),
+            z0,
+            jac=lambda z: self.kaufman_jacobian(full(z), fixed, free),
+            bounds=(lower[free], upper[free]),
+            method="trf",
+            x_scale="jac",
+            max_nfev=max_nfev,
+        )
+        p = full(result.x)
+        return p, self.cost(p, fixed)
+
+    def global_fit(self, rng, n_starts, n_local):
+        """Sobol search of the reduced cost, then TRF from the best distinct points."""
+        k = self.model.k_nonlinear
+        sobol = qmc.Sobol(d=k, scramble=True, seed=rng)
+        u = sobol.random_base2(max(1, int(np.ceil(np.log2(max(n_starts, 2))))))
+        points = self.model.lower + u * (self.model.upper - self.model.lower)
+        costs = np.array([self.cost(p) for p in points])
+        order = np.argsort(costs)
+        chosen = []
+        for i in order:
+            if len(chosen) >= n_local:
+                break
+            if all(np.max(np.abs(u[i] - u[j])) > 0.1 for j in chosen):
+                chosen.append(i)
+        minima = [self.local_fit(points[i]) for i in chosen]
+        minima.sort(key=lambda item: item[1])
+        return minima
+
+
+# --------------------------------------------------------------------------------------
+# Helpers
+# --------------------------------------------------------------------------------------
+
+def _check_options(models, n_starts, n_local, uncertainty, dip_range_deg, huber_passes):
+    unknown = [m for m in models if m not in _MODELS]
+    if unknown:
+        raise OptionError("[fit] models", f"unknown model(s) {unknown}.",
+                          f"Choose from {list(_MODELS)}.")
+    if uncertainty not in _UNCERTAINTY:
+        raise OptionError("[fit] uncertainty", f"got {uncertainty!r}.",
+                          f"Choose one of {list(_UNCERTAINTY)}.")
+    if int(n_starts) < 1 or int(n_local) < 1 or int(huber_passes) < 1:
+        raise OptionError("[fit]", "n_starts, n_local and huber_passes must be at least 1.",
+                          "Use positive whole numbers.")
+    lo, hi = (float(v) for v in dip_range_deg)
+    if not 0.0 < lo < hi <= 90.0:
+        raise OptionError("[fit] dip_range_deg", f"got {list(dip_range_deg)}.",
+                          "Give [low, high] with 0 < low < high <= 90 degrees.")
+
+
+def _huber_loss(u):
+    """Huber (1964) loss on standardised residuals; equals u² inside ±c."""
+    a = np.abs(u)
+    return np.where(a <= _HUBER_C, u * u, 2.0 * _HUBER_C * a - _HUBER_C ** 2)
+
+
+def _bound_flags(model, p):
+    flags = []
+    span = model.upper - model.lower
+    near = (p - model.lower < 1e-3 * span) | (model.upper - p < 1e-3 * span)
+    for i in np.flatnonzero(near):
+        name = model.names[i]
+        if name == "dip" and model.upper[i] == 90.0 and p[i] > 89.0:
+            continue  # vertical is a physical limit, not an arbitrary bound
+        base = name.rstrip("0123456789")
+        label = _BOUND_LABELS.get(base, base)
+        if model.n_patches > 1 and base != name:
+            label = f"{label}[{name[len(base):]}]"
+        flags.append(f"bound:{label}")
+    return flags
+
+
+_BOUND_LABELS = {"centre": "centre_m", "log_length": "length_m", "log_top": "top_depth_m",
+                 "log_height": "height_m", "dip": "dip_deg", "trace_offset": "trace_offset_m",
+                 "log_ratio": "sigma_ratio", "log_pos_depth": "pos_depth_m",
+                 "log_neg_depth": "neg_depth_m", "sep_s": "separation_m", "sep_t": "separation_m"}
+
+
+def _interval_from_profile(values, dchi2, best, lo_bound, hi_bound):
+    """Where Δχ²/s² = 1 on each side of the optimum (linear in the signed root)."""
+    values = np.asarray(values, dtype=float)
+    root = np.sign(values - best) * np.sqrt(np.maximum(dchi2, 0.0))
+    order = np.argsort(values)
+    values, root = values[order], root[order]
+    out = []
+    for target, bound in ((-1.0, lo_bound), (1.0, hi_bound)):
+        side = values <= best if target < 0 else values >= best
+        v, q = values[side], root[side]
+        if target < 0:
+            v, q = v[::-1], q[::-1]  # walk outward from the optimum
+        found = bound
+        for i in range(1, len(v)):
+            if (q[i] - target) * (q[i - 1] - target) <= 0 and q[i] != q[i - 1]:
+                w = (target - q[i - 1]) / (q[i] - q[i - 1])
+                found = v[i - 1] + w * (v[i] - v[i - 1])
+                break
+        out.append(found)
+    return out
+
+
+def _covariance(problem, p, x, s2):
+    """
+    Linearised covariance of (natural nonlinear, linear) parameters: s²(JᵀWJ)⁻¹ by SVD.
+    """
+    model = problem.model
+    g = model.basis(p)
+    m = model.n_columns
+    dg = model.basis_jacobian(p, g)
+    j_theta = np.einsum("nmk,m->nk", dg, x[:m]) * problem.sw[:, None]
+    aw = np.hstack([g * problem.sw[:, None], problem.regional_w])
+    jac = np.hstack([j_theta, aw])
+    u, sv, vt = np.linalg.svd(jac, full_matrices=False)
+    keep = sv > sv[0] * 1e-10
+    inv = (vt[keep].T / sv[keep] ** 2) @ vt[keep]
+    cov_t = s2 * inv
+    k = model.k_nonlinear
+    t_nat = model.natural_transform(p)
+    n_nat = t_nat.shape[0]
+    full_t = np.zeros((n_nat + aw.shape[1], k + aw.shape[1]))
+    full_t[:n_nat, :k] = t_nat
+    full_t[n_nat:, k:] = np.eye(aw.shape[1])
+    cov = full_t @ cov_t @ full_t.T
+    names = model.natural_names + model.linear_names
+    return cov, names, cov_t
+
+
+def _station_spacing(s, t):
+    if s.size < 2:
+        return 1.0
+    dist, _ = cKDTree(np.column_stack([s, t])).query(np.column_stack([s, t]), k=2)
+    return float(np.median(dist[:, 1]))
+
+
+# --------------------------------------------------------------------------------------
+# Public API
+# --------------------------------------------------------------------------------------
+
+def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
+                uncertainty="profile", huber=True, huber_passes=4, dip_range_deg=(30.0, 90.0),
+                fit_sigma_ratio=False, max_trace_offset_m=0.0, min_bic_gain=10.0,
+                mcmc_steps=1500, mcmc_walkers=32, seed=0):
+    """
+    Fit fault-patch sources (and rival models) to the stations of one segment.
+
+    The stations ``detection.station_index`` are put in the segment's local
+    frame (``s`` along strike, ``t`` toward the dip direction). Each
+    candidate model is fitted by variable projection [Golub1973]_,
+    [Kaufman1975]_: the nonlinear geometry θ is searched with Sobol points
+    and refined with bounded trust-region least squares, while the source
+    strengths and a regional plane ``c0 + c_s·s + c_t·t`` are solved
+    linearly for every θ. The potential of a patch is
+    :func:`geosp.physics.patch_sp_local`.
+
+    Parameters
+    ----------
+    stations : Stations
+        All stations; ``sp_mv`` (mV) is fitted, ``sigma_mv`` (mV) gives the
+        noise where finite (else ``detection.noise_mv``), and ``weight``
+        multiplies 1/σ².
+    detection : Detection
+        The segment and its corridor stations.
+    models : list of str
+        Candidate source models besides "none" (regional plane only):
+        "fault_patch" (one rectangular patch), "two_patches" (two patches
+        along strike sharing the dip) and "pole_pair" (a shallow pair of
+        point poles: depth at most 50 m, separation at most 200 m, the
+        signature of casings, pipelines and cables). Default: all three.
+    n_starts : int
+        Sobol points of the global search per model (rounded up to a power
+        of 2). Default 512.
+    n_local : int
+        Trust-region refinements from the best distinct Sobol points.
+        Default 8.
+    uncertainty : {"profile", "jacobian", "mcmc"}
+        "jacobian": linearised covariance only (16/84 % as ±1σ, in log depth);
+        "profile": plus profile likelihood of the top depth and the jump
+        (the 16/84 % bounds where Δχ²/s² = 1); "mcmc": an affine-invariant
+        ensemble sampler [Goodman2010]_ (needs ``emcee``) with the linear
+        parameters marginalised analytically. Default "profile".
+    huber : bool
+        Iteratively reweighted least squares with Huber weights
+        min(1, 1.345 σ/|r|) [Huber1964]_. Default True.
+    huber_passes : int
+        Number of reweighting passes (3–5 is usual). Default 4.
+    dip_range_deg : list of 2 floats
+        Dip bounds in degrees toward the mapped dip direction when the
+        segment's dip direction is known; otherwise the dip δ′ is searched
+        in [low, 180 − low] from the +t side and reported with the
+        contract's sign rule. Default [30, 90].
+    fit_sigma_ratio : bool
+        Fit the conductivity ratio across the fault (dip-direction side over
+        the other side, 0.1–10), exact for vertical faults only. Default False.
+    max_trace_offset_m : float
+        Fit a shift of the trace across strike up to this many metres
+        (0 = trace fixed at the mapped position). Default 0.
+    min_bic_gain : float
+        A source model is accepted only when its BIC is lower than that of
+        the no-source model by at least this much ("very strong" evidence is
+        ΔBIC > 10 on the Kass & Raftery scale [Kass1995]_). Default 10.
+    mcmc_steps, mcmc_walkers : int
+        Chain length and ensemble size for ``uncertainty="mcmc"``.
+        Defaults 1500 and 32.
+    seed : int
+        Seed of the search and of the sampler; combined with the segment id
+        so that every segment draws its own reproducible numbers. Default 0.
+
+    Returns
+    -------
+    fit : SegmentFit
+        Chosen model, source rows (``sources`` layer fields plus
+        uncertainty fields), predictions (mV), model-selection table,
+        profile-likelihood curves (Δχ²/s²), correlations and flags.
+
+    Raises
+    ------
+    InputError
+        If the segment has fewer usable stations than the one-patch model
+        has parameters (plus 3).
+    OptionError
+        For unknown models or uncertainty methods, or bad bounds.
+
+    Notes
+    -----
+    Bounds: s_c within the segment ± ¼ of its length; L from 3 station
+    spacings to 1.5 × the segment; z_t from z_min = max(10 m, ½ spacing) to
+    half the corridor half-width; z_b − z_t from z_min to 4 × the corridor
+    half-width. The χ² used for model selection is the Huber loss at the
+    final weights (plain χ² without ``huber``); BIC = χ² + k ln N [Schwarz1978]_,
+    AIC = χ² + 2k [Akaike1974]_. s² = χ²/(N − k) scales every interval.
+
+    References
+    ----------
+    * [Golub1973]_, [Kaufman1975]_, [Huber1964]_, [Akaike1974]_, [Schwarz1978]_,
+      [Kass1995]_, [Goodman2010]_
+    """
+    start_time = time.perf_counter()
+    models = tuple(models)
+    _check_options(models, n_starts, n_local, uncertainty, dip_range_deg, huber_passes)
+    segment = detection.segment
+    index = np.asarray(detection.station_index, dtype=int)
+    d_all = np.asarray(stations.sp_mv, dtype=float)[index]
+    weight = np.asarray(stations.weight, dtype=float)[index]
+    sigma = np.asarray(stations.sigma_mv, dtype=float)[index]
+    noise = float(detection.noise_mv) if np.isfinite(detection.noise_mv) and \
+        detection.noise_mv > 0 else np.nan
+    sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, noise)
+    used = np.isfinite(d_all) & (weight > 0)
+    s_all, t_all = segment.to_local(stations.easting[index], stations.northing[index])
+    s_all, t_all = np.asarray(s_all, float), np.asarray(t_all, float)
+    n = int(used.sum())
+    if n < 12:
+        raise InputError(
+            f"segment {segment.segment_id}", f"only {n} usable stations in the fit corridor.",
+            "Widen the corridor ([detect] corridor_m) or skip this segment.",
+        )
+    s, t, d = s_all[used], t_all[used], d_all[used]
+    if not np.all(np.isfinite(sigma[used])):
+        # no noise estimate: robust scatter about a plane (1.4826·MAD, common practice)
+        plane = np.column_stack([np.ones(n), s, t])
+        res = d - plane @ np.linalg.lstsq(plane, d, rcond=None)[0]
+        fallback = max(1.4826 * np.median(np.abs(res - np.median(res))), 1e-3)
+        sigma = np.where(np.isfinite(sigma), sigma, fallback)
+    sig = sigma[used]
+    w0 = weight[used] / sig ** 2
+    spacing = _station_spacing(s, t)
+    corridor = float(np.max(np.abs(t))) if n else 1.0
+    seg_len = float(segment.length_m)
+    z_min = max(10.0, 0.5 * spacing)
+    top_hi = max(corridor / 2.0, 3.0 * z_min)
+    len_lo = 3.0 * spacing
+    len_hi = max(1.5 * seg_len, 2.0 * len_lo)
+    dip_lo, dip_hi = (float(v) for v in dip_range_deg)
+    if not segment.dip_known:
+        dip_hi = 180.0 - dip_lo
+    bounds = {
+        "centre": (-0.25 * seg_len, 1.25 * seg_len),
+        "length": (len_lo, len_hi),
+        "top": (z_min, top_hi),
+        "height": (z_min, max(4.0 * corridor, 3.0 * z_min)),
+        "dip": (dip_lo, dip_hi),
+        "offset": float(max_trace_offset_m),
+        "fit_ratio": bool(fit_sigma_ratio),
+        "pole_depth": (z_min, max(_POLE_MAX_DEPTH, 2.0 * z_min)),
+        "s_span": (float(s.min()), float(s.max())),
+        "t_span": (float(t.min()), float(t.max())),
+    }
+    counter = [0]
+    scale = _REGIONAL_SCALE
+    data = {"s": s, "t": t, "d": d, "counter": counter,
+            "regional": np.column_stack([np.ones(n), s / scale, t / scale])}
+    rng = item_seed(seed, segment.segment_id)
+
+    fits = {}
+    for name in ("none",) + models:
+        model = _Model(name, data, bounds)
+        fits[name] = _fit_model(model, data, w0, sig, rng, n_starts=n_starts,
+                                n_local=n_local, huber=huber, huber_passes=huber_passes)
+
+    # model selection ---------------------------------------------------------------------
+    rows = []
+    for name, res in fits.items():
+        k = res["model"].k
+        rows.append({"model": name, "k": k, "chi2": res["chi2"],
+                     "aic": res["chi2"] + 2 * k, "bic": res["chi2"] + k * np.log(n)})
+    selection = pd.DataFrame(rows)
+    bic = dict(zip(selection["model"], selection["bic"]))
+    gains = {m: bic["none"] - bic[m] for m in models}
+    selection["bic_gain"] = [0.0 if m == "none" else gains[m] for m in selection["model"]]
+    bic_gain = gains.get("fault_patch", max(gains.values()) if gains else 0.0)
+    eligible = [m for m in models if gains[m] >= min_bic_gain]
+    chosen = min(eligible, key=lambda m: bic[m]) if eligible else "none"
+
+    best = fits[chosen]
+    model = best["model"]
+    problem = _Problem(model, data, np.sqrt(w0 * best["robust"]))
+    p, x = best["p"], best["x"]
+    g = model.basis(p)
+    source_used = g @ x[:model.n_columns] if model.n_columns else np.zeros(n)
+    regional_used = data["regional"] @ x[model.n_columns:]
+
+    flags, sources, profiles, correlation, ambiguities = [], [], {}, None, ()
+    if chosen != "none":
+        chi2_plain = float(np.sum(w0 * best["robust"] * (d - source_used - regional_used) ** 2))
+        dof = max(n - model.k, 1)
+        s2 = chi2_plain / dof
+        cov, names, cov_t = _covariance(problem, p, x, s2)
+        sd = np.sqrt(np.maximum(np.diag(cov), 0.0))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            corr = cov / np.outer(sd, sd)
+        correlation = pd.DataFrame(corr, index=names, columns=names)
+        flags += _bound_flags(model, p)
+        for i in range(len(names)):
+            for j in range(i + 1, len(names)):
+                if np.isfinite(corr[i, j]) and abs(corr[i, j]) > 0.95:
+                    flags.append(f"corr:{names[i]}/{names[j]}")
+        ambiguities = tuple(best["ambiguities"])
+        if ambiguities:
+            flags.append("multimodal")
+        intervals, profiles = _intervals(
+            problem, model, p, x, s2, cov_t, uncertainty, rng, mcmc_steps, mcmc_walkers)
+        stats = {
+            "rms_mv": float(np.sqrt(np.mean((d - source_used - regional_used) ** 2))),
+            "chi2_red": float(best["chi2"] / dof),
+            "n_stations": n,
+            "bic_gain": float(gains[chosen]),
+        }
+        if model.name == "pole_pair":
+            sources.append(_pole_row(segment, model, p, x, cov, names, stats, flags))
+        else:
+            elevation = np.asarray(stations.upward, dtype=float)[index][used]
+            sources += _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals,
+                                   s, t, elevation)
+    flags = list(dict.fromkeys(flags))
+
+    predicted = np.full(index.size, np.nan)
+    source_mv = np.full(index.size, np.nan)
+    g_all = model.basis(p, s_all, t_all) if model.n_columns else np.zeros((index.size, 0))
+    src_all = g_all @ x[:model.n_columns] if model.n_columns else np.zeros(index.size)
+    reg_all = np.column_stack([np.ones(index.size), s_all / scale, t_all / scale]) \
+        @ x[model.n_columns:]
+    predicted[:] = src_all + reg_all
+    source_mv[:] = src_all
+    weights = np.zeros(index.size)
+    weights[used] = best["robust"]
+    return SegmentFit(
+        segment=segment, station_index=index, chosen=chosen, sources=tuple(sources),
+        predicted_mv=predicted, source_mv=source_mv, selection=selection, profiles=profiles,
+        correlation=correlation, flags=tuple(flags), n_forward=int(counter[0]),
+        seconds=time.perf_counter() - start_time, ambiguities=ambiguities, weights=weights,
+    )
+
+
+def _fit_model(model, data, w0, sig, rng, *, n_starts, n_local, huber, huber_passes):
+    """Global search plus Huber IRLS for one model; returns a dict with p, x, χ², weights."""
+    d = data["d"]
+    robust = np.ones(d.size)
+    minima = []
+    p = np.zeros(0)
+    passes = huber_passes if huber else 1
+    for i in range(passes):
+        problem = _Problem(model, data, np.sqrt(w0 * robust))
+        if model.k_nonlinear == 0:
+            p = np.zeros(0)
+        elif i == 0:
+            minima = problem.global_fit(rng, n_starts, n_local)
+            p = minima[0][0]
+        else:
+            p, _ = problem.local_fit(p)
+        x, _, g, _ = problem.solve(p)
+        pred = (g @ x[:model.n_columns] if model.n_columns else 0.0) \
+            + data["regional"] @ x[model.n_columns:]
+        u = (d - pred) / sig
+        if not huber:
+            break
+        new = np.minimum(1.0, _HUBER_C / np.maximum(np.abs(u), 1e-12))
+        change = np.max(np.abs(new - robust))
+        robust = new
+        if change < 1e-3:
+            break
+    problem = _Problem(model, data, np.sqrt(w0 * robust))
+    x, _, g, _ = problem.solve(p)
+    pred = (g @ x[:model.n_columns] if model.n_columns else 0.0) \
+        + data["regional"] @ x[model.n_columns:]
+    u = (d - pred) / sig
+    weight_station = w0 * sig ** 2  # the user's station weights
+    chi2 = float(np.sum(weight_station * (_huber_loss(u) if huber else u * u)))
+    ambiguities = _distinct_minima(problem, p, minima) if model.k_nonlinear else []
+    return {"model": model, "p": p, "x": x, "chi2": chi2, "robust": robust,
+            "ambiguities": ambiguities}
+
+
+def _distinct_minima(problem, best_p, minima):
+    """Other minima with Δχ² < 4 separated from the best one by a barrier."""
+    best_cost = problem.cost(best_p)
+    out = []
+    span = problem.model.upper - problem.model.lower
+    for p, _ in minima[1:]:
+        c = problem.cost(p)
+        if c - best_cost >= 4.0 or np.max(np.abs(p - best_p) / span) < 0.02:
+            continue
+        mid = problem.cost(0.5 * (p + best_p))
+        if mid > max(c, best_cost) + 1.0:
+            patches, dip, offset, ratio = problem.model.patches(p) if \
+                problem.model.n_patches else ([], np.nan, 0.0, 1.0)
+            item = {"delta_chi2": c - best_cost, "dip_deg": float(dip)}
+            if patches:
+                item.update(top_depth_m=float(patches[0]["top"]),
+                            bottom_depth_m=float(patches[0]["bottom"]),
+                            centre_m=float(patches[0]["centre"]),
+                            length_m=float(patches[0]["length"]))
+            out.append(item)
+    return out
+
+
+def _intervals(problem, model, p, x, s2, cov_t, uncertainty, rng, mcmc_steps, mcmc_walkers):
+    """16/84 % bounds of each patch's top depth and jump (profile, linearised or MCMC)."""
+    out, profiles = [], {}
+    if model.name == "pole_pair":
+        return out, profiles
+    chi2_min = problem.cost(p)
+    sd_t = np.sqrt(np.maximum(np.diag(cov_t), 0.0))
+    k = model.k_nonlinear
+    for j in range(model.n_patches):
+        it = 4 * j + 2
+        top = np.exp(p[it])
+        sd_log = sd_t[it]
+        sd_f = sd_t[k + j]
+        lin = {"top": (top * np.exp(-sd_log), top * np.exp(sd_log)),
+               "jump": (x[j] - sd_f, x[j] + sd_f)}
+        if uncertainty == "jacobian":
+            out.append(lin)
+            continue
+        if uncertainty == "mcmc":
+            out.append(_mcmc_interval(problem, p, s2, cov_t, j, rng, mcmc_steps, mcmc_walkers))
+            continue
+        # profile of log z_t
+        step = min(max(sd_log, 0.02), 1.0)
+        values, dchi2 = _profile(
+            p[it], step, model.lower[it], model.upper[it],
+            lambda v, start: problem.local_fit(start, hold=(it, v), max_nfev=60),
+            p, chi2_min, s2)
+        lo, hi = _interval_from_profile(values, dchi2, p[it], model.lower[it], model.upper[it])
+        top_int = (float(np.exp(lo)), float(np.exp(hi)))
+        # profile of the jump (linear parameter held fixed)
+        step_f = max(sd_f, 1e-6 * max(abs(x[j]), 1.0))
+        f_values, f_dchi2 = _profile(
+            x[j], step_f, -np.inf, np.inf,
+            lambda v, start: problem.local_fit(start, fixed=(j, v), max_nfev=60),
+            p, chi2_min, s2)
+        flo, fhi = _interval_from_profile(f_values, f_dchi2, x[j], -np.inf, np.inf)
+        if not np.isfinite(flo):
+            flo = lin["jump"][0]
+        if not np.isfinite(fhi):
+            fhi = lin["jump"][1]
+        out.append({"top": top_int, "jump": (float(flo), float(fhi))})
+        if j == 0:
+            profiles["top_depth_m"] = (np.exp(values), dchi2)
+            profiles["jump_mv"] = (f_values, f_dchi2)
+    return out, profiles
+
+
+def _profile(best, step, lower, upper, refit, p_best, chi2_min, s2):
+    """Profile Δχ²/s² outward from the optimum until it exceeds 4 or a bound is reached."""
+    values, dchi2 = [best], [0.0]
+    for direction in (-1.0, 1.0):
+        start = p_best.copy()
+        for factor in (0.5, 1.0, 1.5, 2.0, 2.75, 3.5):
+            v = best + direction * factor * step
+            at_bound = False
+            if v <= lower or v >= upper:
+                v = lower if v <= lower else upper
+                at_bound = True
+            start, cost = refit(v, start)
+            delta = max(cost - chi2_min, 0.0) / s2
+            values.append(v)
+            dchi2.append(delta)
+            if delta > 4.0 or at_bound:
+                break
+    order = np.argsort(values)
+    return np.asarray(values)[order], np.asarray(dchi2)[order]
+
+
+def _mcmc_interval(problem, p, s2, cov_t, j, rng, steps, walkers):
+    """16/84 % of top depth and jump from emcee, x marginalised [Goodman2010]_."""
+    try:
+        import emcee
+    except ImportError as err:
+        raise OptionError("[fit] uncertainty", "'mcmc' needs the emcee package.",
+                          "Install it with: pip install 'geosp[mcmc]'.") from err
+    model = problem.model
+    k = model.k_nonlinear
+
+    def log_prob(q):
+        if np.any(q < model.lower) or np.any(q > model.upper):
+            return -np.inf
+        x, r, g, aw = problem.solve(q)
+        sign, logdet = np.linalg.slogdet(aw.T @ aw)
+        if sign <= 0:
+            return -np.inf
+        return -0.5 * float(r @ r) / s2 - 0.5 * logdet
+
+    walkers = max(int(walkers), 2 * k + 2)
+    sd = np.sqrt(np.maximum(np.diag(cov_t)[:k], 1e-12))
+    span = model.upper - model.lower
+    start = p + np.minimum(sd, 0.05 * span) * rng.standard_normal((walkers, k))
+    start = np.clip(start, model.lower + 1e-6 * span, model.upper - 1e-6 * span)
+    sampler = emcee.EnsembleSampler(walkers, k, log_prob, seed=None)
+    sampler._random = np.random.mtrand.RandomState(int(rng.integers(2 ** 31)))
+    sampler.run_mcmc(start, int(steps), progress=False)
+    chain = sampler.get_chain(discard=int(steps) // 2, thin=5, flat=True)
+    tops = np.exp(chain[:, 4 * j + 2])
+    jumps = []
+    for q in chain[:: max(1, len(chain) // 400)]:
+        x, r, g, aw = problem.solve(q)
+        cov_x = s2 * np.linalg.pinv(aw.T @ aw)
+        jumps.append(x[j] + np.sqrt(max(cov_x[j, j], 0.0)) * rng.standard_normal())
+    return {"top": tuple(float(v) for v in np.percentile(tops, [16, 84])),
+            "jump": tuple(float(v) for v in np.percentile(jumps, [16, 84]))}
+
+
+def _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals, s, t, elevation):
+    """Rows of the ``sources`` layer for a patch model (contract sign rule applied)."""
+    patches, dip_local, offset, ratio = model.patches(p)
+    sd = dict(zip(names, np.sqrt(np.maximum(np.diag(cov), 0.0))))
+    flip = dip_local > 90.0
+    dip = 180.0 - dip_local if flip else dip_local
+    strike = (segment.strike_deg + (180.0 if flip else 0.0)) % 360.0
+    sign = -1.0 if flip else 1.0
+    ratio_out = (1.0 / ratio) if flip else ratio
+    rows = []
+    for j, patch in enumerate(patches):
+        suffix = f"[{j}]" if model.n_patches > 1 else ""
+        idx = {n: names.index(n) for n in names}
+        i_top, i_bot = idx[f"top_depth_m{suffix}"], idx[f"bottom_depth_m{suffix}"]
+        i_f, i_dip = idx[f"jump_mv{suffix}"], idx["dip_deg"]
+        top, bottom, f = patch["top"], patch["bottom"], float(x[j])
+        # derived: geometric-mean depth and strength × height, delta method
+        gm = np.sqrt(top * bottom)
+        grad_gm = np.zeros(len(names))
+        grad_gm[i_top] = 0.5 * np.sqrt(bottom / top)
+        grad_gm[i_bot] = 0.5 * np.sqrt(top / bottom)
+        grad_fh = np.zeros(len(names))
+        grad_fh[i_top], grad_fh[i_bot], grad_fh[i_f] = -f, f, bottom - top
+        # across position of the top edge: offset + z_t·cot(δ′)
+        rad = np.radians(dip_local)
+        grad_loc = np.zeros(len(names))
+        grad_loc[i_top] = np.cos(rad) / np.sin(rad)
+        grad_loc[i_dip] = -top / np.sin(rad) ** 2 * np.pi / 180.0
+        if "trace_offset_m" in idx:
+            grad_loc[idx["trace_offset_m"]] = 1.0
+        across_top = offset + top * np.cos(rad) / np.sin(rad)
+        top_x, top_y = segment.to_world(patch["centre"], across_top)
+        row_flags = list(flags)
+        footprint = (np.abs(t - across_top) < 3 * top) & \
+            (np.abs(s - patch["centre"]) < patch["length"] / 2 + top)
+        elev = elevation[footprint]
+        elev = elev[np.isfinite(elev)]
+        if elev.size > 1 and np.ptp(elev) > 0.2 * top:
+            row_flags.append("terrain")
+        if model.ratio_index is not None and dip < 89.5:
+            row_flags.append("dip-contrast approximation")
+        interval = intervals[j] if j < len(intervals) else {"top": (np.nan, np.nan),
+                                                            "jump": (np.nan, np.nan)}
+        jlo, jhi = interval["jump"]
+        if flip:
+            jlo, jhi = -jhi, -jlo
+        row = {
+            "source_id": f"{segment.segment_id}-P{j + 1}",
+            "fault_id": segment.fault_id,
+            "segment_id": segment.segment_id,
+            "model": "fault_patch",
+            "top_x": float(top_x),
+            "top_y": float(top_y),
+            "strike_deg": float(strike),
+            "dip_deg": float(dip),
+            "dip_dir_deg": float((strike + 90.0) % 360.0),
+            "top_depth_m": float(top),
+            "bottom_depth_m": float(bottom),
+            "length_m": float(patch["length"]),
+            "jump_mv": sign * f,
+            "top_depth_lo_m": float(interval["top"][0]),
+            "top_depth_hi_m": float(interval["top"][1]),
+            "jump_lo_mv": float(jlo),
+            "jump_hi_mv": float(jhi),
+            **stats,
+            "sigma_ratio": float(ratio_out),
+            "flags": "; ".join(dict.fromkeys(row_flags)),
+            "geo_mean_depth_m": float(gm),
+            "geo_mean_depth_sd_m": float(np.sqrt(max(grad_gm @ cov @ grad_gm, 0.0))),
+            "jump_height_mv_m": float(sign * f * (bottom - top)),
+            "jump_height_sd_mv_m": float(np.sqrt(max(grad_fh @ cov @ grad_fh, 0.0))),
+            "top_depth_sd_m": float(sd[f"top_depth_m{suffix}"]),
+            "bottom_depth_sd_m": float(sd[f"bottom_depth_m{suffix}"]),
+            "dip_sd_deg": float(sd["dip_deg"]),
+            "location_sd_m": float(np.sqrt(max(grad_loc @ cov @ grad_loc, 0.0))),
+        }
+        rows.append(row)
+    return rows
+
+
+def _pole_row(segment, model, p, x, cov, names, stats, flags):
+    """A ``pole_pair`` row: positive pole at top_x/top_y/top_depth_m, the other in neg_*."""
+    pos_s, pos_t, pos_z = p[0], p[1], np.exp(p[2])
+    neg_s, neg_t, neg_z = p[0] + p[3], p[1] + p[4], np.exp(p[5])
+    k = float(x[0])
+    if k < 0:  # keep the positive pole first
+        (pos_s, pos_t, pos_z), (neg_s, neg_t, neg_z), k = (neg_s, neg_t, neg_z), \
+            (pos_s, pos_t, pos_z), -k
+    px, py = segment.to_world(pos_s, pos_t)
+    nx, ny = segment.to_world(neg_s, neg_t)
+    sd = dict(zip(names, np.sqrt(np.maximum(np.diag(cov), 0.0))))
+    row = {
+        "source_id": f"{segment.segment_id}-Q1",
+        "fault_id": segment.fault_id,
+        "segment_id": segment.segment_id,
+        "model": "pole_pair",
+        "top_x": float(px), "top_y": float(py),
+        "strike_deg": float(segment.strike_deg % 360.0),
+        "dip_deg": np.nan,
+        "dip_dir_deg": float((segment.strike_deg + 90.0) % 360.0),
+        "top_depth_m": float(pos_z), "bottom_depth_m": np.nan, "length_m": np.nan,
+        "jump_mv": np.nan, "top_depth_lo_m": np.nan, "top_depth_hi_m": np.nan,
+        "jump_lo_mv": np.nan, "jump_hi_mv": np.nan,
+        **stats,
+        "sigma_ratio": 1.0,
+        "flags": "; ".join(dict.fromkeys(list(flags) + ["likely cultural"])),
+        "geo_mean_depth_m": np.nan, "geo_mean_depth_sd_m": np.nan,
+        "jump_height_mv_m": np.nan, "jump_height_sd_mv_m": np.nan,
+        "top_depth_sd_m": float(sd.get("pos_depth_m", np.nan)),
+        "bottom_depth_sd_m": np.nan, "dip_sd_deg": np.nan,
+        "location_sd_m": float(np.hypot(sd.get("pos_s_m", np.nan), sd.get("pos_t_m", np.nan))),
+        "neg_x": float(nx), "neg_y": float(ny), "neg_depth_m": float(neg_z),
+        "pole_k_mv_m": k,
+    }
+    return row
+
+
+# --------------------------------------------------------------------------------------
+# All segments
+# --------------------------------------------------------------------------------------
+
+def _fit_one(item, options):
+    """Worker entry: fit one segment given its own stations (picklable)."""
+    stations, detection, original_index = item
+    fit = fit_segment(stations, detection, **options)
+    return replace(fit, station_index=original_index)
+
+
+def fit_segments(stations, detections, *, workers=None, scheduler=None, progress=None,
+                 **fit_options):
+    """
+    Fit every detected segment and re-solve all accepted source strengths jointly.
+
+    Parameters
+    ----------
+    stations : Stations
+        All stations (reduced ``sp_mv`` in mV).
+    detections : sequence of Detection
+        One per segment; only those with ``detected`` are fitted (model
+        selection still decides whether a source is accepted).
+    workers : int, "auto" or None
+        Processes for the segment fits (see :func:`geosp.parallel.map_segments`).
+    scheduler : str or None
+        Dask scheduler address ``tcp://HOST:PORT``; overrides ``workers``.
+    progress : callable or None
+        ``progress(n_done, n_total)`` after each segment.
+    **fit_options
+        Keyword options of :func:`fit_segment` (the ``[fit]`` keys).
+
+    Returns
+    -------
+    result : FitResult
+        ``fits`` per segment; ``sources`` the accepted rows with ``jump_mv``
+        (or ``pole_k_mv_m``) re-solved jointly; ``model_mv`` and
+        ``residual_mv`` at every station (mV); ``regional`` the joint plane.
+
+    Notes
+    -----
+    Results do not depend on the executor: each segment's random numbers
+    come from ``(seed, segment_id)``. Where two segments with accepted
+    sources share more than half of the smaller station set, the segment
+    with the lower ``bic_gain`` is dropped from the accepted sources (its
+    fit is kept in ``fits`` and its sources get no row); the joint linear
+    solve then avoids double-counting one anomaly.
+    """
+    detections = [det for det in detections if det.detected]
+    items = []
+    for det in detections:
+        index = np.asarray(det.station_index, dtype=int)
+        local = replace(det, station_index=np.arange(index.size))
+        items.append((stations.subset(index), local, index))
+    func = partial(_fit_one, options=dict(fit_options))
+    fits = tuple(map_segments(func, items, workers=workers, scheduler=scheduler,
+                              progress=progress))
+    accepted = _resolve_overlaps(fits)
+    sources, model_mv, regional = _joint_solve(stations, fits, accepted, detections)
+    residual = np.asarray(stations.sp_mv, dtype=float) - model_mv
+    return FitResult(fits=fits, model_mv=model_mv, residual_mv=residual, regional=regional,
+                     sources=tuple(sources))
+
+
+def _resolve_overlaps(fits):
+    """Indices of fits whose sources are kept (weaker of overlapping pairs dropped)."""
+    candidates = [i for i, f in enumerate(fits) if f.sources]
+    candidates.sort(key=lambda i: -max(r["bic_gain"] for r in fits[i].sources))
+    kept = []
+    for i in candidates:
+        a = set(fits[i].station_index.tolist())
+        clash = False
+        for j in kept:
+            b = set(fits[j].station_index.tolist())
+            if len(a & b) > 0.5 * min(len(a), len(b)):
+                clash = True
+                logger.info("segment %s overlaps %s; its sources are dropped",
+                            fits[i].segment.segment_id, fits[j].segment.segment_id)
+                break
+        if not clash:
+            kept.append(i)
+    return sorted(kept)
+
+
+def _source_column(row, coordinates):
+    if row["model"] == "pole_pair":
+        e, n = coordinates[:2]
+        r_pos = np.sqrt((e - row["top_x"]) ** 2 + (n - row["top_y"]) ** 2 + row["top_depth_m"] ** 2)
+        r_neg = np.sqrt((e - row["neg_x"]) ** 2 + (n - row["neg_y"]) ** 2 + row["neg_depth_m"] ** 2)
+        return 1.0 / r_pos - 1.0 / r_neg
+    return physics.fault_patch_sp(
+        coordinates[:2], top_x=row["top_x"], top_y=row["top_y"], strike_deg=row["strike_deg"],
+        dip_deg=row["dip_deg"], top_depth_m=row["top_depth_m"],
+        bottom_depth_m=row["bottom_depth_m"], length_m=row["length_m"], jump_mv=1.0,
+        sigma_ratio=row["sigma_ratio"],
+    )
+
+
+def _joint_solve(stations, fits, accepted, detections):
+    """All accepted strengths plus one regional plane, by weighted least squares."""
+    e = np.asarray(stations.easting, dtype=float)
+    nth = np.asarray(stations.northing, dtype=float)
+    d = np.asarray(stations.sp_mv, dtype=float)
+    sigma = np.asarray(stations.sigma_mv, dtype=float)
+    noises = [det.noise_mv for det in detections if np.isfinite(det.noise_mv) and det.noise_mv > 0]
+    fallback = float(np.median(noises)) if noises else 1.0
+    sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, fallback)
+    weight = np.asarray(stations.weight, dtype=float)
+    used = np.isfinite(d) & (weight > 0)
+    rows = [dict(r) for i in accepted for r in fits[i].sources]
+    e0 = float(np.mean(e[used])) if used.any() else 0.0
+    n0 = float(np.mean(nth[used])) if used.any() else 0.0
+    columns = [_source_column(r, (e, nth)) for r in rows]
+    design = np.column_stack(columns + [np.ones(e.size), (e - e0) / _REGIONAL_SCALE,
+                                        (nth - n0) / _REGIONAL_SCALE])
+    sw = np.sqrt(weight / sigma ** 2)
+    if used.sum() >= design.shape[1]:
+        coef = np.linalg.lstsq(design[used] * sw[used, None], d[used] * sw[used], rcond=None)[0]
+    else:
+        coef = np.zeros(design.shape[1])
+    model_mv = design @ coef
+    for row, value in zip(rows, coef[:len(rows)]):
+        if row["model"] == "pole_pair":
+            row["pole_k_mv_m_segment"] = row["pole_k_mv_m"]
+            row["pole_k_mv_m"] = float(value)
+            continue
+        old = row["jump_mv"]
+        row["jump_segment_mv"] = old
+        shift = float(value) - old
+        row["jump_mv"] = float(value)
+        row["jump_lo_mv"] += shift
+        row["jump_hi_mv"] += shift
+        row["jump_height_mv_m"] = float(value) * (row["bottom_depth_m"] - row["top_depth_m"])
+    regional = {"c0_mv": float(coef[-3]), "east_mv_per_m": float(coef[-2] / _REGIONAL_SCALE),
+                "north_mv_per_m": float(coef[-1] / _REGIONAL_SCALE),
+                "east0_m": e0, "north0_m": n0}
+    return rows, model_mv, regional
