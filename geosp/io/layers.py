@@ -156,18 +156,18 @@ def _segments_qml():
             lo, hi = bounds[i], bounds[i + 1]
             parts = [f'"detected" = {detected}']
             if np.isfinite(lo):
-                parts.append(f'"score" &gt;= {lo:g}')
+                parts.append(f'"score" >= {lo:g}')
             if np.isfinite(hi):
-                parts.append(f'"score" &lt; {hi:g}')
+                parts.append(f'"score" < {hi:g}')
             if not np.isfinite(lo):
-                span = f"score &lt; {hi:g}"
+                span = f"score < {hi:g}"
             elif not np.isfinite(hi):
-                span = f"score &gt;= {lo:g}"
+                span = f"score >= {lo:g}"
             else:
                 span = f"score {lo:g} to {hi:g}"
             label = ("detected, " if detected else "not detected, ") + span
-            rules.append(f'  <rule key="r{k}" symbol="{k}" label="{label}" '
-                         f'filter="{" AND ".join(parts)}"/>')
+            rules.append(f'  <rule key="r{k}" symbol="{k}" label="{escape(label)}" '
+                         f'filter="{escape(" AND ".join(parts))}"/>')
             symbols.append(_line_symbol(k, colour, width, style))
             k += 1
     renderer = ('<renderer-v2 type="RuleRenderer" symbollevels="0" enableorderby="0" '
