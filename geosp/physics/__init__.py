@@ -1,3 +1,14 @@
-"""Forward models of SP sources: kernels (``_kernels``) and public functions (``forward``)."""
+"""Forward models of SP sources: kernels (``_kernels``, ``_fast``), public functions
+(``forward``) and derivatives (``jacobian``)."""
 
-from .forward import fault_patch_sp, patch_sp_local  # noqa: F401
+from .forward import (  # noqa: F401
+    fault_patch_sp,
+    inclined_sheet_2d_sp,
+    patch_sp_local,
+    point_pole_sp,
+    pole_pair_sp,
+    sources_sp,
+    sphere_sp,
+    strip_2d_sp,
+)
+from .jacobian import JACOBIAN_PARAMETERS, patch_sp_gradient, patch_sp_local_jacobian  # noqa: F401
