@@ -1,0 +1,262 @@
+"""
+The project file (TOML): one file that describes a survey so a run is reproducible.
+
+The input sections ([survey], [stations], [readings], [faults], [dem]) have
+fixed keys (contract.md). The stage sections ([reduce], [grid], [detect],
+[fit], [publish]) take the keyword options of each stage's entry function;
+the caller passes their defaults so this module stays below the steps.
+"""
+
+from __future__ import annotations
+
+import difflib
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ..errors import InputErrors, OptionError
+
+# Keys of the input sections, with defaults. "" means "not given".
+INPUT_SECTIONS = {
+    "survey": {"name": "", "crs": ""},
+    "stations": {
+        "path": "", "layer": "", "id": "", "value_mv": "", "line": "", "elevation": "",
+        "time": "", "sigma_mv": "", "lon": "", "lat": "", "x": "", "y": "", "crs": "",
+        "value_scale": 1.0,
+    },
+    "readings": {
+        "path": "", "line": "", "from": "", "to": "", "time": "", "value_mv": "",
+        "electrode_checks": "", "checks_time": "time", "checks_offset_mv": "offset_mv",
+        "reference_station": "",
+    },
+    "faults": {"path": "", "layer": "", "id": "", "dip_deg": "", "dip_dir_deg": ""},
+    "dem": {"path": ""},
+}
+REQUIRED = {
+    "stations": ("path", "id"),
+    "readings": ("path", "line", "from", "to", "time", "value_mv"),
+    "faults": ("path",),
+    "dem": ("path",),
+}
+PATH_KEYS = {("stations", "path"), ("readings", "path"), ("readings", "electrode_checks"),
+             ("faults", "path"), ("dem", "path")}
+STAGE_SECTIONS = ("reduce", "grid", "detect", "fit", "publish")
+
+
+@dataclass(frozen=True)
+class Project:
+    """A parsed project file: input sections with paths resolved, stage options with defaults."""
+
+    path: Path
+    text: str
+    survey: dict
+    stations: dict
+    faults: dict
+    readings: dict | None = None
+    dem: dict | None = None
+    stages: dict = field(default_factory=dict)  # section -> {option: value}
+
+    @property
+    def base_dir(self):
+        return self.path.parent
+
+    def input_paths(self):
+        """Every input file named by the project (resolved), the project file first."""
+        paths = [self.path]
+        for section in (self.stations, self.readings, self.faults, self.dem):
+            if not section:
+                continue
+            for key in ("path", "electrode_checks"):
+                if section.get(key):
+                    paths.append(Path(section[key]))
+        return paths
+
+
+def _suggest(word, options):
+    close = difflib.get_close_matches(word, list(options), n=1, cutoff=0.5)
+    return f" Did you mean '{close[0]}'?" if close else ""
+
+
+def _type_ok(value, default):
+    if default is None:
+        return True
+    if isinstance(default, bool):
+        return isinstance(value, bool)
+    if isinstance(default, (int, float)):
+        return (isinstance(value, (int, float)) and not isinstance(value, bool)) or value == "auto"
+    if isinstance(default, (list, tuple)):
+        return isinstance(value, list)
+    if isinstance(default, str):
+        return isinstance(value, (str, int, float)) and not isinstance(value, bool)
+    return True
+
+
+def _describe(default):
+    if isinstance(default, bool):
+        return "true or false"
+    if isinstance(default, (int, float)):
+        return "a number"
+    if isinstance(default, (list, tuple)):
+        return "a list such as [1, 2]"
+    return "a string"
+
+
+def read_project(path, *, stage_defaults=None):
+    """
+    Read and validate a project file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML project file.
+    stage_defaults : dict, optional
+        ``{section: {option: default}}`` for the stage sections, from the
+        stage functions' signatures.
+
+    Returns
+    -------
+    project : Project
+
+    Raises
+    ------
+    InputError
+        Missing file, TOML syntax error, unknown section or key (with the
+        nearest known one), wrong value type, missing required key.
+    """
+    path = Path(path)
+    stage_defaults = stage_defaults or {}
+    if not path.exists():
+        raise OptionError(path, "the project file does not exist.",
+                          "Check the path, or write a template with 'geosp init PROJECT.toml'.")
+    if path.is_dir():
+        raise OptionError(path, "is a folder, not a project file.", "Pass the .toml file inside it.")
+    text = path.read_text(encoding="utf-8", errors="replace")
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as err:
+        raise OptionError(path, f"is not valid TOML ({err}).",
+                          "Fix the syntax; strings need quotes, e.g. path = \"stations.shp\".") from None
+    known_sections = {**INPUT_SECTIONS, **{s: stage_defaults.get(s, {}) for s in STAGE_SECTIONS}}
+    problems = []
+    for section, body in data.items():
+        if section not in known_sections:
+            problems.append(OptionError(path, f"unknown section [{section}].{_suggest(section, known_sections)}",
+                                        f"Known sections: {', '.join('[' + s + ']' for s in known_sections)}."))
+            continue
+        if not isinstance(body, dict):
+            problems.append(OptionError(path, f"'{section}' must be a section ([{section}]), not a value.",
+                                        f"Write it as [{section}] followed by its keys."))
+            continue
+        defaults = known_sections[section]
+        for key, value in body.items():
+            if key not in defaults:
+                known = ", ".join(sorted(defaults)) or "none"
+                problems.append(OptionError(
+                    path, f"unknown key '{key}' in [{section}].{_suggest(key, defaults)}",
+                    f"Known keys in [{section}]: {known}."))
+            elif not _type_ok(value, defaults[key]):
+                problems.append(OptionError(
+                    path, f"[{section}] {key} = {value!r} has the wrong type.",
+                    f"Give {_describe(defaults[key])}" + (f" (default {defaults[key]!r})." if defaults[key] != "" else ".")))
+    for section in ("stations", "faults"):
+        if section not in data:
+            problems.append(OptionError(path, f"the [{section}] section is missing.",
+                                        "Every project needs [stations] and [faults]; see 'geosp init'."))
+    for section, keys in REQUIRED.items():
+        if section in data and isinstance(data[section], dict):
+            for key in keys:
+                if not data[section].get(key):
+                    problems.append(OptionError(path, f"[{section}] needs '{key}'.",
+                                                f"Add {key} = \"...\" to [{section}]."))
+    if problems:
+        raise InputErrors(problems)
+
+    def resolved(section):
+        if section not in data:
+            return None
+        merged = {**INPUT_SECTIONS[section], **data[section]}
+        for sec, key in PATH_KEYS:
+            if sec == section and merged.get(key):
+                merged[key] = str((path.parent / merged[key]).resolve())
+        return merged
+
+    stages = {}
+    for section in STAGE_SECTIONS:
+        options = dict(stage_defaults.get(section, {}))
+        options.update(data.get(section, {}))
+        stages[section] = options
+    return Project(
+        path=path.resolve(), text=text, survey=resolved("survey") or dict(INPUT_SECTIONS["survey"]),
+        stations=resolved("stations"), faults=resolved("faults"), readings=resolved("readings"),
+        dem=resolved("dem"), stages=stages,
+    )
+
+
+TEMPLATE = '''\
+# geosp project file. Relative paths are relative to this file.
+# Every option has a default; delete what you do not need.
+# Reference: docs/project-file.md
+
+[survey]
+name = "My prospect"          # shown on the map and the report
+# crs = "EPSG:32633"          # working CRS (metres); default: UTM zone of the stations
+
+[stations]                    # total-field stations, or station positions for [readings]
+path = "stations.shp"         # .shp (or zipped .zip), .gpkg, .geojson, .csv
+# layer = "stations"          # GeoPackage: which layer (optional when there is one)
+id = "STN"                    # station id column
+value_mv = "SP_mV"            # SP in mV; omit when the values come from [readings]
+# line = "LINE"               # survey line id column
+# elevation = "ELEV"          # elevation column in m (else sampled from [dem])
+# time = "TIME"               # ISO 8601; marks reoccupations of base/tie stations
+# value_scale = 1.0           # multiply values by this (1000 if the file is in volts)
+# CSV only: lon/lat in WGS 84 ...
+# lon = "lon"
+# lat = "lat"
+# ... or projected x/y with their CRS:
+# x = "easting"
+# y = "northing"
+# crs = "EPSG:32633"
+
+# [readings]                  # raw gradient (dipole) readings, e.g. leapfrog
+# path = "dipoles.csv"
+# line = "LINE"
+# from = "FROM"
+# to = "TO"
+# time = "TIME"               # ISO 8601
+# value_mv = "DV_mV"          # potential at `to` minus potential at `from`, as read
+# electrode_checks = "electrode_checks.csv"   # columns time, offset_mv
+# reference_station = "A-001" # default: the first station read
+
+[faults]
+path = "faults.gpkg"
+# layer = "faults"
+# id = "FAULT"                # default: feature order
+# dip_deg = "dip"             # mapped dip (degrees); unknown dips are fitted
+# dip_dir_deg = "dip_dir"     # mapped dip direction (degrees clockwise from north)
+
+# [dem]
+# path = "dem.tif"            # any GDAL raster, elevation in m
+
+# Stage options: see docs/project-file.md for every key and its default.
+# [reduce]
+# [grid]
+# [detect]
+# [fit]
+# [publish]
+'''
+
+
+def write_template(path):
+    """Write the commented project-file template; refuse to overwrite an existing file."""
+    from ..errors import InputError
+
+    path = Path(path)
+    if path.exists():
+        raise InputError(path, "already exists; geosp never overwrites a project file.",
+                         "Choose another name, e.g. 'geosp init new_survey.toml'.")
+    if path.suffix.lower() != ".toml":
+        raise InputError(path, "a project file should end in .toml.", "Use a name such as survey.toml.")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(TEMPLATE, encoding="utf-8")
+    return path

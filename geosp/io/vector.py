@@ -1,0 +1,70 @@
+"""Open vector files (Shapefile, zipped Shapefile, GeoPackage, GeoJSON) with one clear error per problem."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import geopandas as gpd
+import pyogrio
+
+from ..errors import InputError
+
+VECTOR_SUFFIXES = {".shp", ".zip", ".gpkg", ".geojson", ".json"}
+
+
+def _gdal_path(path):
+    if path.suffix.lower() == ".zip":
+        return f"zip://{path}"
+    return str(path)
+
+
+def read_vector(path, *, layer="", what="file"):
+    """
+    Read a vector layer into a GeoDataFrame.
+
+    Raises InputError for a missing file, an unsupported format, a broken
+    file, an unknown or ambiguous layer, or an empty layer.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError(path, f"the {what} does not exist.", "Check the path in the project file.")
+    suffix = path.suffix.lower()
+    if suffix not in VECTOR_SUFFIXES:
+        raise InputError(path, f"unsupported {what} format '{suffix}'.",
+                         "Use a Shapefile (.shp or zipped .zip), GeoPackage (.gpkg) or GeoJSON (.geojson).")
+    if suffix == ".shp":
+        for part in (".shx", ".dbf"):
+            if not path.with_suffix(part).exists() and not path.with_suffix(part.upper()).exists():
+                raise InputError(path, f"the Shapefile is incomplete: {path.with_suffix(part).name} is missing.",
+                                 "Copy all the Shapefile's parts (.shp, .shx, .dbf, .prj) into one folder, "
+                                 "or export the layer as a GeoPackage.")
+    source = _gdal_path(path)
+    try:
+        layers = pyogrio.list_layers(source)
+    except Exception as err:  # pyogrio raises several DataSource errors
+        raise InputError(path, f"cannot be opened as a {what} ({_short(err)}).",
+                         "Check that the file is complete and not corrupted; re-export it from your GIS.") from None
+    names = [str(name) for name, _ in layers]
+    if not names:
+        raise InputError(path, "contains no layers.", "Export the data again.")
+    if layer:
+        if layer not in names:
+            raise InputError(path, f"has no layer '{layer}'.", f"Layers in the file: {', '.join(names)}.")
+    elif len(names) > 1 and suffix == ".gpkg":
+        raise InputError(path, f"has {len(names)} layers ({', '.join(names)}).",
+                         "Name the one to use with layer = \"...\" in the project file.")
+    else:
+        layer = names[0]
+    try:
+        frame = gpd.read_file(source, layer=layer, engine="pyogrio")
+    except Exception as err:
+        raise InputError(path, f"layer '{layer}' cannot be read ({_short(err)}).",
+                         "Check that the file is complete and not corrupted; re-export it from your GIS.") from None
+    if len(frame) == 0:
+        raise InputError(path, f"layer '{layer}' is empty.", "Export a layer that has features.")
+    return frame, layer
+
+
+def _short(err):
+    text = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+    return text[:200]
