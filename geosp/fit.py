@@ -52,15 +52,11 @@ _SOURCE_FIELDS = (
 # --------------------------------------------------------------------------------------
 
 def _pole_pair_local(along, across, pos, neg):
-    """Unit-strength pole pair, 1/r+ − 1/r− (1/m), in the local frame [Telford1990]_."""
-    if hasattr(physics, "pole_pair_sp"):
-        return physics.pole_pair_sp(
-            (along, across), pos_x=pos[0], pos_y=pos[1], pos_depth_m=pos[2],
-            neg_x=neg[0], neg_y=neg[1], neg_depth_m=neg[2], k_mv_m=1.0,
-        )
-    r_pos = np.sqrt((along - pos[0]) ** 2 + (across - pos[1]) ** 2 + pos[2] ** 2)
-    r_neg = np.sqrt((along - neg[0]) ** 2 + (across - neg[1]) ** 2 + neg[2] ** 2)
-    return 1.0 / r_pos - 1.0 / r_neg
+    """Unit-strength pole pair 1/r+ − 1/r− (1/m) in the local frame [Telford1990]_."""
+    return physics.pole_pair_sp(
+        (along, across), pos_x=pos[0], pos_y=pos[1], pos_depth_m=pos[2],
+        neg_x=neg[0], neg_y=neg[1], neg_depth_m=neg[2], k_mv_m=1.0,
+    )
 
 
 # --------------------------------------------------------------------------------------
@@ -160,7 +156,41 @@ class _Model:
         return np.column_stack(cols)
 
     def basis_jacobian(self, p, g0=None):
-        """∂(basis)/∂p by forward differences in the transformed parameters, (n, m, k)."""
+        """∂(basis)/∂p in the transformed parameters, shape (n, n_columns, k)."""
+        if self.n_patches == 0 or not hasattr(physics, "patch_sp_local_jacobian"):
+            return self._difference_jacobian(p, g0)
+        along, across = self.data["s"], self.data["t"]
+        patches, dip, offset, ratio = self.patches(p)
+        k = self.k_nonlinear
+        jac = np.zeros((along.size, self.n_patches, k))
+        for j, patch in enumerate(patches):
+            self.data["counter"][0] += 1
+            g, dg = physics.patch_sp_local_jacobian(
+                along, across - offset, centre_m=patch["centre"], length_m=patch["length"],
+                depth_top_m=patch["top"], depth_bottom_m=patch["bottom"], dip_deg=dip,
+                jump_mv=1.0, sigma_ratio=ratio,
+            )
+            height = patch["bottom"] - patch["top"]
+            jac[:, j, 4 * j] = dg[:, 0]
+            jac[:, j, 4 * j + 1] = patch["length"] * dg[:, 1]
+            jac[:, j, 4 * j + 2] = patch["top"] * (dg[:, 2] + dg[:, 3])
+            jac[:, j, 4 * j + 3] = height * dg[:, 3]
+            jac[:, j, 4 * self.n_patches] = dg[:, 4]
+            if self.ratio_index is not None:
+                # g = g0·2/(1+r) on the +normal side and g0·2r/(1+r) on the other
+                plus = (across - offset) > 0
+                jac[:, j, self.ratio_index] = g * np.where(plus, -ratio, 1.0) / (1.0 + ratio)
+        if self.offset_index is not None:
+            i = self.offset_index
+            step = 1e-6 * (self.upper[i] - self.lower[i])
+            q = p.copy()
+            q[i] = q[i] + step if q[i] + step <= self.upper[i] else q[i] - step
+            g0 = self.basis(p) if g0 is None else g0
+            jac[:, :, i] = (self.basis(q) - g0) / (q[i] - p[i])
+        return jac
+
+    def _difference_jacobian(self, p, g0=None):
+        """Forward differences in the transformed parameters, (n, m, k)."""
         g0 = self.basis(p) if g0 is None else g0
         jac = np.empty(g0.shape + (self.k_nonlinear,))
         span = self.upper - self.lower
@@ -1052,17 +1082,11 @@ def _resolve_overlaps(fits):
 
 
 def _source_column(row, coordinates):
-    if row["model"] == "pole_pair":
-        e, n = coordinates[:2]
-        r_pos = np.sqrt((e - row["top_x"]) ** 2 + (n - row["top_y"]) ** 2 + row["top_depth_m"] ** 2)
-        r_neg = np.sqrt((e - row["neg_x"]) ** 2 + (n - row["neg_y"]) ** 2 + row["neg_depth_m"] ** 2)
-        return 1.0 / r_pos - 1.0 / r_neg
-    return physics.fault_patch_sp(
-        coordinates[:2], top_x=row["top_x"], top_y=row["top_y"], strike_deg=row["strike_deg"],
-        dip_deg=row["dip_deg"], top_depth_m=row["top_depth_m"],
-        bottom_depth_m=row["bottom_depth_m"], length_m=row["length_m"], jump_mv=1.0,
-        sigma_ratio=row["sigma_ratio"],
-    )
+    """SP (mV) of one source row at unit strength (jump 1 mV or k 1 mV·m)."""
+    unit = dict(row)
+    unit["jump_mv"] = 1.0
+    unit["pole_k_mv_m"] = 1.0
+    return physics.sources_sp(coordinates[:2], [unit])
 
 
 def _joint_solve(stations, fits, accepted, detections):
