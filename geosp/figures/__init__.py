@@ -1,0 +1,1 @@
+"""Figures for the report: one module per pipeline step, matplotlib only."""
