@@ -1,0 +1,511 @@
+"""
+Offline interactive web map (``map.html``) for the drilling team.
+
+The page is one self-contained HTML document: Leaflet's script, stylesheet
+and images are inlined from ``geosp/assets/`` (licences in
+``geosp/assets/licenses/``), the SP grid is an inline PNG, and no tile layer
+is added unless the user asks for one, so the map works with no network.
+
+Every value that comes from the user's files (ids, names, notes, flags, the
+title) is HTML-escaped before it reaches a popup, tooltip, legend or title:
+folium itself escapes nothing.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import json
+import math
+import re
+from importlib import resources
+
+import numpy as np
+
+__all__ = ["CAUTIONS", "make_webmap", "check_offline"]
+
+#: Default caution statements (contract, "Safety").
+CAUTIONS = (
+    "SP interpretation is non-unique: other source geometries can fit the same data.",
+    "Sources shown are models, not observations.",
+    "Siting a well is a decision for licensed professionals under local regulations.",
+    "Field crews must follow local electrical and site-safety practice.",
+)
+
+_CMAP = "RdBu_r"  # diverging: negative blue, 0 white, positive red
+_GRID_OPACITY = 0.75
+_LOADING = re.compile(
+    r"""(?:\b(?:src|href|data|poster|action)\s*=\s*["']?\s*(?:https?:)?//)"""
+    r"""|(?:url\(\s*["']?\s*(?:https?:)?//)|(?:@import)""",
+    re.IGNORECASE,
+)
+
+
+# --------------------------------------------------------------------------
+# Assets
+# --------------------------------------------------------------------------
+
+def _asset(*parts, binary=False):
+    ref = resources.files("geosp").joinpath("assets", *parts)
+    return ref.read_bytes() if binary else ref.read_text(encoding="utf-8")
+
+
+def _data_uri(data, mime="image/png"):
+    return f"data:{mime};base64,{base64.b64encode(data).decode('ascii')}"
+
+
+def _leaflet_css():
+    css = _asset("leaflet", "leaflet.css")
+
+    def inline(match):
+        name = match.group(1)
+        return f'url("{_data_uri(_asset("leaflet", "images", name, binary=True))}")'
+
+    return re.sub(r"url\(images/([\w.-]+\.png)\)", inline, css)
+
+
+def _leaflet_icons_js():
+    icons = {key: _data_uri(_asset("leaflet", "images", name, binary=True))
+             for key, name in (("iconUrl", "marker-icon.png"),
+                               ("iconRetinaUrl", "marker-icon-2x.png"),
+                               ("shadowUrl", "marker-shadow.png"))}
+    # Leaflet prefixes imagePath to the icon URL; an empty path keeps the data URIs intact.
+    return ("L.Icon.Default.imagePath = '';\n"
+            f"L.Icon.Default.mergeOptions({json.dumps(icons)});\n")
+
+
+def check_offline(document):
+    """
+    Raise if an HTML document would load anything from the network.
+
+    Looks for ``src``/``href``/``data`` attributes and CSS ``url()`` or
+    ``@import`` that point to an ``http(s)://`` or protocol-relative URL.
+    (Plain links in text, such as Leaflet's attribution link, load nothing
+    and pass; so does a tile URL the user asked for, which Leaflet receives
+    as a JavaScript string.)
+
+    Parameters
+    ----------
+    document : str
+        HTML text.
+
+    Raises
+    ------
+    RuntimeError
+        Naming the first offending fragment.
+    """
+    for match in _LOADING.finditer(document):
+        start = match.start()
+        fragment = document[max(0, start - 40): start + 80]
+        # An <a href> is a link the user may click, not a load.
+        tag_start = document.rfind("<", 0, start)
+        if tag_start >= 0 and re.match(r"<a\s", document[tag_start:tag_start + 3], re.I):
+            continue
+        raise RuntimeError(f"The web map would load a network resource: {fragment!r}")
+
+
+# --------------------------------------------------------------------------
+# Formatting (everything returned here is already HTML-safe)
+# --------------------------------------------------------------------------
+
+def _text(value):
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return ""
+    return html.escape(str(value), quote=True)
+
+
+def _number(value, digits=1):
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return "–"
+    if not math.isfinite(value):
+        return "–"
+    return f"{value:.{digits}f}"
+
+
+def _with_range(row, key, lo_key, hi_key, digits=1):
+    centre = _number(row.get(key), digits)
+    lo, hi = _number(row.get(lo_key), digits), _number(row.get(hi_key), digits)
+    if lo == "–" and hi == "–":
+        return centre
+    return f"{centre} ({lo} to {hi})"
+
+
+def _nice_ceiling(value):
+    if not np.isfinite(value) or value <= 0:
+        return 1.0
+    power = 10.0 ** np.floor(np.log10(value))
+    for step in (1.0, 2.0, 2.5, 5.0, 10.0):
+        if step * power >= value * (1 - 1e-12):
+            return float(step * power)
+    return float(10 * power)
+
+
+def _colour_scale(stations, grid):
+    values = []
+    if stations is not None and len(stations) and "sp_mv" in stations:
+        values.append(np.asarray(stations["sp_mv"], dtype=float))
+    if grid is not None:
+        values.append(np.asarray(grid.values, dtype=float).ravel())
+    values = np.concatenate(values) if values else np.array([])
+    values = values[np.isfinite(values)]
+    return _nice_ceiling(np.percentile(np.abs(values), 98)) if values.size else 1.0
+
+
+def _hex_colour(cmap, amplitude, value):
+    from matplotlib.colors import to_hex
+
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return "#888888"
+    if not math.isfinite(value):
+        return "#888888"
+    return to_hex(cmap(0.5 + 0.5 * np.clip(value / amplitude, -1, 1)))
+
+
+# --------------------------------------------------------------------------
+# Layers
+# --------------------------------------------------------------------------
+
+def _to_wgs84(frame):
+    if frame is None or len(frame) == 0:
+        return frame
+    if frame.crs is None:
+        raise ValueError("A layer for the web map has no CRS; set the working CRS first.")
+    return frame.to_crs("EPSG:4326")
+
+
+def _feature_collection(frame, properties):
+    from shapely.geometry import mapping
+
+    features = []
+    for i, (geom, props) in enumerate(zip(frame.geometry, properties)):
+        if geom is None or geom.is_empty:
+            continue
+        features.append({"type": "Feature", "id": str(i), "properties": props,
+                         "geometry": mapping(geom)})
+    return {"type": "FeatureCollection", "features": features}
+
+
+def _station_properties(row, cmap, amplitude):
+    return {
+        "Station": _text(row.get("station_id")),
+        "Line": _text(row.get("line_id")),
+        "SP (mV)": _number(row.get("sp_mv")),
+        "Model (mV)": _number(row.get("model_mv")),
+        "Residual (mV)": _number(row.get("residual_mv")),
+        "Flag": _text(row.get("flag")) or "–",
+        "_colour": _hex_colour(cmap, amplitude, row.get("sp_mv")),
+    }
+
+
+def _score_colour(score, detected):
+    if not detected:
+        return "#7f7f7f"
+    try:
+        score = float(score)
+    except (TypeError, ValueError):
+        score = 0.0
+    if score >= 5:
+        return "#a50026"
+    if score >= 3:
+        return "#f46d43"
+    return "#fdae61"
+
+
+def _segment_properties(row):
+    detected = int(row.get("detected", 0) or 0)
+    polarity = row.get("polarity", 0)
+    try:
+        polarity = int(polarity)
+    except (TypeError, ValueError):
+        polarity = 0
+    return {
+        "Fault": _text(row.get("fault_id")),
+        "Segment": _text(row.get("segment_id")),
+        "Score": _number(row.get("score"), 2),
+        "Detected": "yes" if detected else "no",
+        "Polarity": {1: "+1", -1: "−1"}.get(polarity, "–"),
+        "Stations": _text(row.get("n_stations")),
+        "Note": _text(row.get("note")) or "–",
+        "_colour": _score_colour(row.get("score"), detected),
+        "_weight": 5 if detected else 2,
+        "_dash": None if detected else "6 6",
+    }
+
+
+def _source_properties(row):
+    model = str(row.get("model", ""))
+    props = {
+        "Source": _text(row.get("source_id")),
+        "Model": _text(model),
+        "Fault / segment": f"{_text(row.get('fault_id'))} / {_text(row.get('segment_id'))}",
+    }
+    if model == "pole_pair":
+        props.update({
+            "Positive pole depth (m)": _with_range(row, "top_depth_m", "top_depth_lo_m",
+                                                   "top_depth_hi_m"),
+            "Negative pole depth (m)": _number(row.get("neg_depth_m")),
+            "Pole strength (mV·m)": _number(row.get("pole_k_mv_m"), 0),
+        })
+    else:
+        props.update({
+            "Top depth (m)": _with_range(row, "top_depth_m", "top_depth_lo_m", "top_depth_hi_m"),
+            "Bottom depth (m)": _number(row.get("bottom_depth_m")),
+            "Jump (mV)": _with_range(row, "jump_mv", "jump_lo_mv", "jump_hi_mv"),
+            "Strike / dip (°)": f"{_number(row.get('strike_deg'), 0)} / "
+                                f"{_number(row.get('dip_deg'), 0)}",
+            "Length (m)": _number(row.get("length_m"), 0),
+            "σ ratio": _number(row.get("sigma_ratio"), 2),
+        })
+    props.update({
+        "RMS (mV)": _number(row.get("rms_mv"), 2),
+        "χ² (reduced)": _number(row.get("chi2_red"), 2),
+        "BIC gain": _number(row.get("bic_gain"), 1),
+        "Flags": _text(row.get("flags")) or "–",
+    })
+    return props
+
+
+_RANGE_NOTE = "Values in brackets: 16th to 84th percentile."
+
+
+def _add_geojson(folium, group, frame, properties, *, style, marker=None, tooltip_field=None):
+    collection = _feature_collection(frame, properties)
+    if not collection["features"]:
+        return
+    fields = [k for k in properties[0] if not k.startswith("_")]
+    kwargs = {}
+    if marker is not None:
+        kwargs["marker"] = marker
+    if tooltip_field:
+        kwargs["tooltip"] = folium.GeoJsonTooltip(fields=[tooltip_field], labels=False)
+    folium.GeoJson(
+        collection,
+        style_function=style,
+        highlight_function=None,
+        popup=folium.GeoJsonPopup(fields=fields, aliases=fields, labels=True),
+        **kwargs,
+    ).add_to(group)
+
+
+# --------------------------------------------------------------------------
+# Grid overlay
+# --------------------------------------------------------------------------
+
+def _grid_overlay(grid, cmap, amplitude):
+    """RGBA image (uint8) of the grid in Web Mercator and its lat/lon bounds."""
+    import rasterio.transform
+    import rasterio.warp
+    from pyproj import Transformer
+    from rasterio.enums import Resampling
+
+    values = np.asarray(grid.values, dtype=float)
+    d_north, d_east = grid.spacing
+    west = grid.easting[0] - d_east / 2
+    north = grid.northing[-1] + d_north / 2
+    n_north, n_east = values.shape
+    src_transform = rasterio.transform.from_origin(west, north, d_east, d_north)
+    east, south = west + n_east * d_east, north - n_north * d_north
+    dst_transform, width, height = rasterio.warp.calculate_default_transform(
+        grid.crs, "EPSG:3857", n_east, n_north, left=west, bottom=south, right=east, top=north)
+    band = np.flipud(values).astype("float32")  # row 0 south -> north-up
+    destination = np.full((height, width), np.nan, dtype="float32")
+    rasterio.warp.reproject(
+        band, destination, src_transform=src_transform, src_crs=grid.crs,
+        src_nodata=np.nan, dst_transform=dst_transform, dst_crs="EPSG:3857",
+        dst_nodata=np.nan, resampling=Resampling.bilinear)
+    rgba = cmap(0.5 + 0.5 * np.clip(np.nan_to_num(destination) / amplitude, -1, 1))
+    rgba[..., 3] = np.where(np.isfinite(destination), 1.0, 0.0)
+    image = (rgba * 255).round().astype(np.uint8)
+    left, bottom, right, top = rasterio.transform.array_bounds(height, width, dst_transform)
+    to_wgs = Transformer.from_crs("EPSG:3857", "EPSG:4326", always_xy=True)
+    lon0, lat0 = to_wgs.transform(left, bottom)
+    lon1, lat1 = to_wgs.transform(right, top)
+    return image, [[lat0, lon0], [lat1, lon1]]
+
+
+def _png_uri(image):
+    from matplotlib import image as mimage
+
+    buffer = io.BytesIO()
+    mimage.imsave(buffer, image, format="png")
+    return _data_uri(buffer.getvalue())
+
+
+# --------------------------------------------------------------------------
+# Page furniture (title, colour bar, cautions)
+# --------------------------------------------------------------------------
+
+def _colour_bar_html(cmap, amplitude, label):
+    from matplotlib.colors import to_hex
+
+    stops = ", ".join(f"{to_hex(cmap(t))} {100 * t:.0f}%" for t in np.linspace(0, 1, 11))
+    ticks = "".join(
+        f'<span style="position:absolute;left:{100 * t:.0f}%;transform:translateX(-50%)">'
+        f"{v:g}</span>"
+        for t, v in ((0.0, -amplitude), (0.25, -amplitude / 2), (0.5, 0.0),
+                     (0.75, amplitude / 2), (1.0, amplitude)))
+    return (
+        '<div id="geosp-colourbar" class="geosp-box" style="bottom:28px;right:10px;width:230px">'
+        f'<div style="font-weight:bold;margin-bottom:3px">{_text(label)}</div>'
+        f'<div style="height:12px;border:1px solid #555;background:linear-gradient(to right, {stops})">'
+        '</div><div style="position:relative;height:14px;margin:2px 8px 0 8px">'
+        f"{ticks}</div></div>"
+    )
+
+
+def _furniture(title, cautions, colour_bar, note):
+    items = "".join(f"<li>{_text(c)}</li>" for c in cautions)
+    heading = (f'<div id="geosp-title" class="geosp-box" style="top:10px;left:60px">'
+               f"<b>{_text(title)}</b></div>") if title else ""
+    return f"""
+<style>
+.geosp-box {{position:fixed;z-index:1000;background:rgba(255,255,255,0.93);padding:6px 9px;
+  border:1px solid #888;border-radius:4px;font:12px/1.35 sans-serif;color:#222;}}
+#geosp-cautions ul {{margin:3px 0 0 0;padding-left:16px}}
+.leaflet-popup-content table th {{text-align:left;padding-right:8px;font-weight:600}}
+</style>
+{heading}
+<div id="geosp-cautions" class="geosp-box" role="note" style="bottom:64px;left:10px;max-width:330px">
+<b>Caution</b><ul>{items}</ul><div style="margin-top:3px;color:#555">{_text(note)}</div></div>
+{colour_bar}
+"""
+
+
+# --------------------------------------------------------------------------
+# Public
+# --------------------------------------------------------------------------
+
+def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
+                tiles_attribution="", cautions=CAUTIONS):
+    """
+    Build the offline interactive map as one self-contained HTML document.
+
+    Parameters
+    ----------
+    stations : GeoDataFrame
+        ``stations`` layer (:func:`geosp.tables.stations_frame`) in the
+        working CRS; circle markers coloured by ``sp_mv``.
+    segments : GeoDataFrame
+        ``fault_segments`` layer; lines coloured by ``score``, detected
+        segments bold.
+    sources : GeoDataFrame
+        ``sources`` layer (footprint polygons).
+    grid : Raster or None
+        Gridded SP in mV (NaN = no data), shown as an image overlay after
+        reprojection to Web Mercator.
+    title : str
+        Shown at the top of the map and as the page title (escaped).
+    tiles : str or None
+        Basemap: a tile URL template (``https://.../{z}/{x}/{y}.png``) or a
+        folium tile name. Default None: no basemap, nothing loads from the
+        network.
+    tiles_attribution : str
+        Attribution text for ``tiles`` (escaped).
+    cautions : sequence of str
+        Statements shown in the caution box. Default :data:`CAUTIONS`.
+
+    Returns
+    -------
+    str
+        The HTML document.
+
+    Raises
+    ------
+    RuntimeError
+        If the document would load anything from the network other than the
+        requested tiles (a bug).
+
+    Notes
+    -----
+    Stations and grid share one diverging colour scale centred on 0 mV,
+    from minus to plus the 98th percentile of ``|SP|`` rounded up to a
+    "nice" number (1, 2, 2.5 or 5 times a power of ten).
+    """
+    import folium
+    from matplotlib import colormaps
+
+    cmap = colormaps[_CMAP]
+    amplitude = _colour_scale(stations, grid)
+    layers = {"stations": _to_wgs84(stations), "segments": _to_wgs84(segments),
+              "sources": _to_wgs84(sources)}
+
+    bounds = []
+    for frame in layers.values():
+        if frame is not None and len(frame):
+            bounds.append(frame.total_bounds)
+    overlay = None
+    if grid is not None and np.isfinite(np.asarray(grid.values, dtype=float)).any():
+        image, image_bounds = _grid_overlay(grid, cmap, amplitude)
+        overlay = (image, image_bounds)
+        (lat0, lon0), (lat1, lon1) = image_bounds
+        bounds.append(np.array([lon0, lat0, lon1, lat1]))
+    if bounds:
+        b = np.vstack(bounds)
+        west, south, east, north = b[:, 0].min(), b[:, 1].min(), b[:, 2].max(), b[:, 3].max()
+    else:
+        west, south, east, north = -1.0, -1.0, 1.0, 1.0
+
+    fmap = folium.Map(location=[(south + north) / 2, (west + east) / 2], zoom_start=13,
+                      tiles=None, control_scale=True)
+    # Nothing from CDNs: Leaflet is inlined below; jQuery, Bootstrap and the
+    # marker-icon fonts are not needed by anything on this map.
+    fmap.default_js = []
+    fmap.default_css = []
+    figure = fmap.get_root()
+    figure.title = _text(title) or "geosp map"
+    figure.header.add_child(folium.Element(f"<style>{_leaflet_css()}</style>"),
+                            name="leaflet_css")
+    figure.header.add_child(
+        folium.Element(f"<script>{_asset('leaflet', 'leaflet.js')}\n{_leaflet_icons_js()}"
+                       "</script>"), name="leaflet_js")
+
+    if tiles:
+        folium.TileLayer(tiles=tiles, attr=_text(tiles_attribution) or "Basemap (user tiles)",
+                         name="Basemap", overlay=False, control=True).add_to(fmap)
+
+    if overlay is not None:
+        folium.raster_layers.ImageOverlay(
+            image=_png_uri(overlay[0]), bounds=overlay[1], opacity=_GRID_OPACITY,
+            name="SP grid (mV)", interactive=False, cross_origin=False, zindex=1,
+        ).add_to(fmap)
+
+    groups = {}
+    for key, label in (("sources", "Source footprints (models)"),
+                       ("segments", "Fault segments (detection score)"),
+                       ("stations", "Stations (SP)")):
+        groups[key] = folium.FeatureGroup(name=label, show=True).add_to(fmap)
+
+    frame = layers["sources"]
+    if frame is not None and len(frame):
+        props = [_source_properties(r) for r in frame.to_dict("records")]
+        _add_geojson(folium, groups["sources"], frame, props, tooltip_field="Source",
+                     style=lambda f: {"color": "#7b3294", "weight": 2, "fillColor": "#7b3294",
+                                      "fillOpacity": 0.12})
+    frame = layers["segments"]
+    if frame is not None and len(frame):
+        props = [_segment_properties(r) for r in frame.to_dict("records")]
+        _add_geojson(folium, groups["segments"], frame, props, tooltip_field="Segment",
+                     style=lambda f: {"color": f["properties"]["_colour"],
+                                      "weight": f["properties"]["_weight"],
+                                      "dashArray": f["properties"]["_dash"], "opacity": 0.95})
+    frame = layers["stations"]
+    if frame is not None and len(frame):
+        props = [_station_properties(r, cmap, amplitude) for r in frame.to_dict("records")]
+        _add_geojson(folium, groups["stations"], frame, props, tooltip_field="Station",
+                     marker=folium.CircleMarker(radius=5, fill=True),
+                     style=lambda f: {"fillColor": f["properties"]["_colour"], "color": "#333333",
+                                      "weight": 1, "fillOpacity": 0.95})
+
+    folium.LayerControl(collapsed=False, position="topright").add_to(fmap)
+    fmap.fit_bounds([[south, west], [north, east]])
+
+    colour_bar = _colour_bar_html(cmap, amplitude, "SP (mV)")
+    figure.html.add_child(folium.Element(_furniture(title, cautions, colour_bar, _RANGE_NOTE)))
+    document = figure.render()
+    check_offline(document)
+    return document

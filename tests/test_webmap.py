@@ -1,0 +1,147 @@
+"""Tests for geosp.webmap: offline, escaped, complete web map."""
+
+import re
+
+import numpy as np
+import pytest
+
+from geosp import tables
+from geosp.models import Detection, FaultSegment, Raster, Stations
+from geosp.webmap import CAUTIONS, check_offline, make_webmap
+
+CRS = "EPSG:32633"
+HOSTILE = "<img src=x onerror=alert(1)>"
+
+
+def make_inputs(hostile=HOSTILE):
+    e = 500000.0 + np.arange(0.0, 500.0, 100.0)
+    n = 4000000.0 + np.arange(0.0, 500.0, 100.0)
+    east, north = np.meshgrid(e, n)
+    sp = 30.0 * np.tanh((east - 500250.0) / 100.0)
+    ids = [f"S{i:03d}" for i in range(east.size)]
+    ids[0] = hostile
+    stations = Stations(station_id=ids, easting=east.ravel(), northing=north.ravel(),
+                        upward=np.zeros(east.size), sp_mv=sp.ravel(), crs=CRS,
+                        flag=[hostile] + [""] * (east.size - 1))
+    seg = FaultSegment(hostile, "F1-1", np.array([[500250.0, 4000000.0], [500250.0, 4000400.0]]),
+                       0.0, 400.0)
+    dets = [Detection(seg, np.arange(5), 25, 6.2, 1, True, 3.0, 2.0, {}, note=hostile)]
+    rows = [dict(source_id="S1", fault_id=hostile, segment_id="F1-1", model="fault_patch",
+                 top_x=500250.0, top_y=4000200.0, strike_deg=0.0, dip_deg=70.0,
+                 dip_dir_deg=90.0, top_depth_m=30.0, bottom_depth_m=200.0, length_m=300.0,
+                 jump_mv=60.0, top_depth_lo_m=25.0, top_depth_hi_m=36.0, jump_lo_mv=50.0,
+                 jump_hi_mv=70.0, rms_mv=2.0, chi2_red=1.05, n_stations=25, bic_gain=80.0,
+                 sigma_ratio=1.0, flags=hostile)]
+    ge = 500000.0 + np.arange(0.0, 500.0, 25.0)
+    gn = 4000000.0 + np.arange(0.0, 500.0, 25.0)
+    gee, _ = np.meshgrid(ge, gn)
+    values = 30.0 * np.tanh((gee - 500250.0) / 100.0)
+    values[:3, :3] = np.nan
+    return dict(stations=tables.stations_frame(stations),
+                segments=tables.segments_frame(dets, CRS),
+                sources=tables.sources_frame(rows, CRS),
+                grid=Raster(ge, gn, values, CRS))
+
+
+# Anything that makes a browser fetch: src/href/data attributes, CSS url() and
+# @import with an absolute or protocol-relative URL (HTML and CSS specs).
+LOADS = re.compile(r"""(?:\b(?:src|href|data)\s*=\s*["']?\s*(?:https?:)?//)"""
+                   r"""|url\(\s*["']?\s*(?:https?:)?//|@import""", re.I)
+
+
+@pytest.fixture(scope="module")
+def document():
+    return make_webmap(**make_inputs(), title="Prospect " + HOSTILE)
+
+
+def test_map_loads_nothing_from_the_network(document):
+    # Every loading reference must be absent except Leaflet's own attribution
+    # anchor (<a href="https://leafletjs.com">), a link that loads nothing.
+    offending = [m for m in LOADS.finditer(document)
+                 if not document[document.rfind("<", 0, m.start()):].startswith("<a ")]
+    assert offending == []
+    urls = set(re.findall(r"https?://[^\s\"'<>)]+", document))
+    # Remaining URLs are XML namespace names, code comments or that anchor.
+    allowed = {"http://www.w3.org/2000/svg", "https://leafletjs.com",
+               "https://bugzilla.mozilla.org/show_bug.cgi?id=888319"}
+    assert urls <= allowed, urls - allowed
+    assert "<script src" not in document and "<link" not in document
+
+
+def test_hostile_values_are_escaped_everywhere(document):
+    # The raw tag must appear nowhere: not in title, popups (JSON), tooltips.
+    assert HOSTILE not in document
+    assert "<img src=x" not in document
+    # ...and it is still shown, escaped, in the title and caption.
+    assert "<title>Prospect &lt;img src=x onerror=alert(1)&gt;</title>" in document
+    assert "Prospect &lt;img src=x onerror=alert(1)&gt;" in document
+
+
+def test_map_has_layers_cautions_scale_and_colour_bar(document):
+    for label in ("SP grid (mV)", "Stations (SP)", "Fault segments (detection score)",
+                  "Source footprints (models)"):
+        assert label in document
+    for caution in CAUTIONS:
+        assert caution in document
+    assert "L.control.scale" in document
+    assert 'id="geosp-colourbar"' in document and "linear-gradient" in document
+    assert "L.control.layers" in document
+    # The grid overlay is an inline PNG, not a file or URL.
+    assert re.search(r'L\.imageOverlay\(\s*"data:image/png;base64,', document)
+    # Popup content carries the 16-84 % ranges of the source parameters.
+    assert "30.0 (25.0 to 36.0)" in document and "60.0 (50.0 to 70.0)" in document
+
+
+def test_check_offline_rejects_cdn_links():
+    with pytest.raises(RuntimeError, match="network"):
+        check_offline('<script src="https://cdn.example.invalid/leaflet.js"></script>')
+    with pytest.raises(RuntimeError):
+        check_offline("<style>.a{background:url(//example.invalid/x.png)}</style>")
+    check_offline('<a href="https://example.invalid">a link</a>')
+
+
+def test_user_tiles_are_the_only_remote_reference():
+    inputs = make_inputs("plain")
+    inputs.pop("grid")
+    document = make_webmap(**inputs, tiles="https://tiles.example.invalid/{z}/{x}/{y}.png",
+                           tiles_attribution="Example <b>tiles</b>")
+    assert "https://tiles.example.invalid/{z}/{x}/{y}.png" in document
+    assert "Example &lt;b&gt;tiles&lt;/b&gt;" in document or "Example \\u0026lt;b" in document
+    assert "SP grid (mV)" not in document
+
+
+def test_empty_layers_still_render():
+    inputs = make_inputs("plain")
+    empty = dict(stations=inputs["stations"].iloc[:0], segments=inputs["segments"].iloc[:0],
+                 sources=tables.sources_frame([], CRS), grid=None)
+    document = make_webmap(**empty)
+    assert "Stations (SP)" in document and CAUTIONS[0] in document
+
+
+def test_grid_overlay_is_web_mercator_and_covers_the_grid():
+    from matplotlib import colormaps
+    from pyproj import Transformer
+
+    from geosp.webmap import _grid_overlay
+
+    grid = make_inputs()["grid"]
+    image, ((lat0, lon0), (lat1, lon1)) = _grid_overlay(grid, colormaps["RdBu_r"], 50.0)
+    # Independent reference: the grid's outer cell edges projected with pyproj
+    # (always_xy). The warped image must cover them to within half a cell
+    # (12.5 m: 1.1e-4 degrees of latitude, 1.4e-4 of longitude at 36 N), the
+    # rounding of rasterio's default output grid to whole pixels; and its
+    # extent may exceed them by at most about two cells (5e-4 degrees).
+    to_wgs = Transformer.from_crs(CRS, "EPSG:4326", always_xy=True)
+    xs = [grid.easting[0] - 12.5, grid.easting[-1] + 12.5]
+    ys = [grid.northing[0] - 12.5, grid.northing[-1] + 12.5]
+    lon, lat = to_wgs.transform([xs[0], xs[1], xs[0], xs[1]], [ys[0], ys[0], ys[1], ys[1]])
+    assert lon0 <= min(lon) + 1.4e-4 and lon1 >= max(lon) - 1.4e-4
+    assert lat0 <= min(lat) + 1.1e-4 and lat1 >= max(lat) - 1.1e-4
+    assert lon1 - max(lon) < 5e-4 and min(lat) - lat0 < 5e-4
+    assert image.dtype == np.uint8 and image.shape[2] == 4
+    # The NaN block sits in the south-west corner: transparent there (north-up
+    # image, so the last rows), opaque in the north-east.
+    assert image[-2, 1, 3] == 0 and image[1, -2, 3] == 255
+    # West side is negative SP (blue), east side positive (red) on RdBu_r.
+    west, east = image[image.shape[0] // 2, 3], image[image.shape[0] // 2, -3]
+    assert west[2] > west[0] and east[0] > east[2]
