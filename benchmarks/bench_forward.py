@@ -1,0 +1,163 @@
+"""
+Speed and memory of the fault-patch forward model.
+
+Prints station-patch evaluations per second of the production path
+(``patch_sp_local``, compiled kernel when numba is installed; and
+``sources_sp`` over many patches) beside, and as ratios to, a plain numpy
+two-triangle solid angle on (N, 3) arrays, the numpy closed-form reference
+kernel, a dense point-dipole sum and scipy quadrature, all in this run.
+Then the peak traced memory of ``sources_sp`` for 10⁶ stations × 100
+patches. Run: ``python benchmarks/bench_forward.py [--quick]``.
+"""
+
+import os
+
+# One core for every method (numpy's BLAS would otherwise use threads).
+for _name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
+
+import argparse  # noqa: E402
+import time  # noqa: E402
+import tracemalloc  # noqa: E402
+
+import numpy as np  # noqa: E402
+from scipy import integrate  # noqa: E402
+
+from geosp.physics import _fast, _kernels, patch_sp_local, sources_sp  # noqa: E402
+
+PATCH = dict(centre_m=100.0, length_m=800.0, depth_top_m=150.0, depth_bottom_m=600.0,
+             dip_deg=60.0, jump_mv=1.0)
+GEOMETRY = (100.0, 800.0, 150.0, 600.0, np.radians(60.0))
+
+
+def rate(function, n_evaluations, *, repeat=3):
+    """
+    Best-of-``repeat`` evaluations per second of ``function()``, by CPU time
+    of this process (the machine may be shared; every method here runs on
+    one core) and by wall-clock time.
+    """
+    best_cpu = best_wall = np.inf
+    for _ in range(repeat):
+        start_cpu, start_wall = time.process_time(), time.perf_counter()
+        function()
+        best_cpu = min(best_cpu, time.process_time() - start_cpu)
+        best_wall = min(best_wall, time.perf_counter() - start_wall)
+    return n_evaluations / best_cpu, n_evaluations / best_wall
+
+
+def dipole_sum(along, across, m):
+    """Surface SP as m × m point dipoles with images (midpoint rule)."""
+    centre, length, top, bottom, dip = GEOMETRY
+    e = np.array([0.0, np.cos(dip), -np.sin(dip)])
+    n = np.array([0.0, np.sin(dip), np.cos(dip)])
+    ds, dw = length / m, (bottom - top) / np.sin(dip) / m
+    s = centre - length / 2 + ds * (np.arange(m) + 0.5)
+    w = top / np.sin(dip) + dw * (np.arange(m) + 0.5)
+    S, W = np.meshgrid(s, w, indexing="ij")
+    src = np.stack([S.ravel(), W.ravel() * e[1], W.ravel() * e[2]], axis=-1)
+    out = np.empty(along.size)
+    for i in range(along.size):
+        d = np.array([along[i], across[i], 0.0]) - src
+        out[i] = 2 * ds * dw * np.sum(d @ n / np.einsum("ij,ij->i", d, d) ** 1.5) / (4 * np.pi)
+    return out
+
+
+def quadrature(along, across):
+    """Surface SP by scipy dblquad of the double-layer kernel, per station."""
+    centre, length, top, bottom, dip = GEOMETRY
+    e = np.array([0.0, np.cos(dip), -np.sin(dip)])
+    n = np.array([0.0, np.sin(dip), np.cos(dip)])
+    out = np.empty(along.size)
+    for i in range(along.size):
+        point = np.array([along[i], across[i], 0.0])
+
+        def integrand(w, s):
+            d = point - (np.array([s, 0.0, 0.0]) + w * e)
+            return n @ d / np.linalg.norm(d) ** 3
+
+        value, _ = integrate.dblquad(integrand, centre - length / 2, centre + length / 2,
+                                     top / np.sin(dip), bottom / np.sin(dip),
+                                     epsabs=1e-10, epsrel=1e-8)
+        out[i] = value / (2 * np.pi)
+    return out
+
+
+def random_patches(count, rng):
+    return [
+        dict(model="fault_patch", top_x=rng.uniform(-3000, 3000), top_y=rng.uniform(-3000, 3000),
+             strike_deg=rng.uniform(0, 360), dip_deg=rng.uniform(30, 90),
+             top_depth_m=rng.uniform(50, 300), bottom_depth_m=rng.uniform(400, 1500),
+             length_m=rng.uniform(300, 2000), jump_mv=rng.uniform(-100, 100))
+        for _ in range(count)
+    ]
+
+
+def main():
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[1])
+    parser.add_argument("--quick", action="store_true", help="smaller sizes")
+    args = parser.parse_args()
+    rng = np.random.default_rng(0)
+    n = 200_000 if args.quick else 1_000_000
+    along = rng.uniform(-3000, 3000, n)
+    across = rng.uniform(-3000, 3000, n)
+    patch_sp_local(along[:10], across[:10], **PATCH)  # compile / load the cache
+
+    rows = []
+    production = rate(lambda: patch_sp_local(along, across, **PATCH), n)
+    kernel = "numba" if _fast.AVAILABLE else "numpy (numba missing)"
+    rows.append((f"production: patch_sp_local [{kernel}]", production))
+
+    m_src = 20 if args.quick else 100
+    n_src = 20_000 if args.quick else 100_000
+    e, nn = along[:n_src], across[:n_src]
+    patches = random_patches(m_src, rng)
+    rows.append((f"production: sources_sp, {m_src} patches",
+                 rate(lambda: sources_sp((e, nn), patches), n_src * m_src, repeat=2)))
+
+    k = 200_000
+    rows.append(("numpy closed form (reference kernel)",
+                 rate(lambda: _kernels.patch_potential(along[:k], across[:k], 0.0, *GEOMETRY,
+                                                       1.0), k)))
+    rows.append(("(a) numpy two triangles, (N,3) arrays",
+                 rate(lambda: _kernels.rectangle_solid_angle_triangles(
+                     along[:k], across[:k], 0.0, *GEOMETRY), k)))
+    k_dip, m = 2000, 50
+    rows.append((f"(b1) dense point-dipole sum, {m}x{m} dipoles",
+                 rate(lambda: dipole_sum(along[:k_dip], across[:k_dip], m), k_dip, repeat=1)))
+    k_quad = 20
+    rows.append(("(b2) scipy dblquad, rtol 1e-8",
+                 rate(lambda: quadrature(along[:k_quad], across[:k_quad]), k_quad, repeat=1)))
+
+    print(f"station-patch evaluations per second (one process, {n} stations for the "
+          "production path)")
+    print(f"{'method':48s} {'evals/s (CPU)':>14s} {'(wall)':>10s} {'production / this':>18s}")
+    for name, (cpu, wall) in rows:
+        print(f"{name:48s} {cpu:14.4g} {wall:10.4g} {production[0] / cpu:18.4g}")
+
+    # Accuracy of the comparison methods at a few stations (mV for f = 1).
+    few = slice(0, 20)
+    reference = patch_sp_local(along[few], across[few], **PATCH)
+    print("max |difference| from production at 20 stations (f = 1):")
+    print(f"  numpy closed form {np.abs(_kernels.patch_potential(along[few], across[few], 0.0, *GEOMETRY, 1.0) - reference).max():.2e}")
+    print(f"  two triangles     {np.abs(_kernels.rectangle_solid_angle_triangles(along[few], across[few], 0.0, *GEOMETRY) / (2 * np.pi) - reference).max():.2e}")
+    print(f"  dipole sum 50x50  {np.abs(dipole_sum(along[few], across[few], 50) - reference).max():.2e}")
+    print(f"  dblquad           {np.abs(quadrature(along[few], across[few]) - reference).max():.2e}")
+
+    n_mem = 200_000 if args.quick else 1_000_000
+    m_mem = 20 if args.quick else 100
+    e_mem = rng.uniform(-5000, 5000, n_mem)
+    n_mem_arr = rng.uniform(-5000, 5000, n_mem)
+    patches = random_patches(m_mem, rng)
+    tracemalloc.start()
+    start = time.perf_counter()
+    sources_sp((e_mem, n_mem_arr), patches)
+    elapsed = time.perf_counter() - start
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    print(f"sources_sp, {n_mem} stations x {m_mem} patches: {elapsed:.1f} s, "
+          f"peak traced memory {peak / 2**20:.1f} MiB (inputs {2 * n_mem * 8 / 2**20:.1f} MiB "
+          "not counted)")
+
+
+if __name__ == "__main__":
+    main()
