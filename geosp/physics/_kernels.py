@@ -1,7 +1,7 @@
 """
 The formulas: plain numpy on broadcastable arrays, SI units, no checks.
 
-Conventions (docs/concepts.md): local frame with ``s`` along strike,
+Conventions (docs/concepts-physics.md): local frame with ``s`` along strike,
 ``t`` across toward the dip direction, ``u`` up; depths positive down.
 The patch normal n = sin(dip)·d + cos(dip)·u points into the hanging wall,
 so a positive jump gives positive potential on the dip-direction side.
