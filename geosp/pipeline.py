@@ -486,8 +486,8 @@ def execute(project_path, stages, *, out=None, workers=None, scheduler=None, pro
     t0 = time.perf_counter()
     run_stages(project, state, stages, workers=workers, scheduler=scheduler, progress=progress, say=say)
     out.mkdir(parents=True, exist_ok=True)
-    write_outputs(project, state, out, publish="publish" in stages, say=say)
     write_state(out, state)
+    write_outputs(project, state, out, publish="publish" in stages, say=say)
     state.timings["total"] = round(time.perf_counter() - t0, 3)
     return out, state
 
