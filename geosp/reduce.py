@@ -497,7 +497,7 @@ def _reduce_gradient(stations, readings, checks, reference, notes, *, drift, mod
         runs[md]["correction"] = corr
     if len(modes) == 2:
         lf, fl = runs["leapfrog"], runs["fixed_lead"]
-        gap = lf["final"]["chi2"] - fl["final"]["chi2"]
+        gap = lf["first"]["chi2"] - fl["first"]["chi2"]
         if lf["first"]["dof"] > 0 and abs(gap) > _DECISIVE_CHI2:
             chosen = "leapfrog" if gap < 0 else "fixed_lead"
         else:

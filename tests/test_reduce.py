@@ -231,3 +231,152 @@ def test_reduced_matches_truth_within_noise_budget():
     # reading), far outside the budget: the check can fail.
     raw = error_vs_truth(reduce_quiet(survey, drift=False), truth)
     assert np.sqrt(np.mean((raw - raw.mean()) ** 2)) > 5 * budget
+
+
+# ------------------------------------------------------------------ statistics of the closure
+
+@pytest.mark.slow
+def test_closure_chi2_follows_chi_square_distribution():
+    # Theory: with Gaussian reading noise of the stated sigma, the weighted sum of squared
+    # residuals of a least-squares adjustment is chi-square with dof = number of independent
+    # loops [Ghilani2010]. 200 small networks (3 lines x 9 stations, 3 ties: dof 4);
+    # one-sample KS test against scipy.stats.chi2(dof) at the 1 % level (a fixed seed, so
+    # the outcome is deterministic; a wrong dof or weight moves the p-value to ~0).
+    chi2, dof, pvals = [], set(), []
+    for seed in range(200):
+        survey, _ = grid_survey(n_rows=3, n_cols=9, tie_cols=(0, 4, 8), noise=1.5, seed=seed,
+                                offsets=False)
+        red = reduce_quiet(survey, drift=False, reading_sigma_mv=1.5, blunder_sigma=np.inf)
+        chi2.append(red.network["chi2"])
+        dof.add(red.network["dof"])
+        pvals.append(red.network["p_value"])
+    assert dof == {4}
+    assert stats.kstest(chi2, stats.chi2(4).cdf).pvalue > 0.01
+    # The reported p-values are then uniform on [0, 1].
+    assert stats.kstest(pvals, "uniform").pvalue > 0.01
+    # Misstated noise (true 1.5 mV, stated 1.0 mV) must be detected by the same test.
+    wrong = [c * 1.5**2 for c in chi2]
+    assert stats.kstest(wrong, stats.chi2(4).cdf).pvalue < 1e-6
+
+
+@settings(max_examples=25, deadline=None)
+@given(seed=hs.integers(0, 10_000), ref_index=hs.integers(0, 44))
+def test_reference_choice_changes_potentials_by_a_constant(seed, ref_index):
+    # Property of the least-squares adjustment: fixing a different node at 0 shifts every
+    # potential by the same constant (the solution is unique up to the datum).
+    survey, _ = grid_survey(n_rows=3, n_cols=15, tie_cols=(0, 7, 14), noise=1.0, seed=seed,
+                            offsets=False)
+    base = reduce_quiet(survey, drift=False, blunder_sigma=np.inf)
+    other = survey.stations.station_id[ref_index]
+    moved = reduce_quiet(Survey(stations=survey.stations, faults=(), crs=survey.crs,
+                                readings=survey.readings, reference_station=other),
+                         drift=False, blunder_sigma=np.inf)
+    shift = moved.stations.sp_mv - base.stations.sp_mv
+    npt.assert_allclose(shift, shift[0], atol=1e-9)
+    npt.assert_allclose(moved.stations.sp_mv[ref_index], 0.0, atol=1e-12)
+    npt.assert_allclose(moved.network["chi2"], base.network["chi2"], rtol=1e-9)
+
+
+def test_auto_mode_picks_leapfrog_when_loops_can_tell():
+    # Loops that go out and back along the same line see the leapfrog/fixed-lead difference
+    # only through the drift; a single loop read out on one line and back on another with a
+    # large offset (6 mV, above the common-practice 5 mV: warned) makes it decisive.
+    n = 12
+    ids = [f"A{i:02d}" for i in range(n)]
+    east = np.r_[np.arange(6) * 50.0, np.arange(6)[::-1] * 50.0]
+    north = np.r_[np.zeros(6), np.full(6, 100.0)]
+    v = true_potential(east, north)
+    frm, to = ids, ids[1:] + ids[:1]
+    times = DAY1 + np.arange(n) * np.timedelta64(300, "s")
+    k = np.arange(n)
+    dv = np.array([v[(i + 1) % n] - v[i] for i in range(n)]) + np.where(k % 2 == 0, 6.0, -6.0)
+    st = Stations(station_id=ids, easting=east, northing=north, upward=np.full(n, np.nan),
+                  sp_mv=np.full(n, np.nan), crs="EPSG:32633")
+    rd = Readings(line_id=np.array(["L1"] * n), from_id=np.array(frm), to_id=np.array(to),
+                  time=times, dv_mv=dv, source_row=np.arange(2, n + 2), path="ring.csv")
+    ck = ElectrodeChecks(time=np.array([DAY1, DAY1 + np.timedelta64(2, "h")], "datetime64[s]"),
+                         offset_mv=np.array([6.0, 6.0]), source_row=np.array([2, 3]), path="ck.csv")
+    survey = Survey(stations=st, faults=(), crs="EPSG:32633", readings=rd, electrode_checks=ck)
+    with pytest.warns(UserWarning, match="common practice"):
+        red = reduce_survey(survey, reading_sigma_mv=0.5, station_sigma_mv=0.0)
+    # Fixed-lead would leave a misclosure of 12 x 6 = 72 mV: chi2 = 72^2/(12*0.25) = 1728.
+    assert red.network["mode"] == "leapfrog"
+    npt.assert_allclose(red.network["chi2_by_mode"]["fixed_lead"], 72.0**2 / (12 * 0.25), rtol=1e-9)
+    npt.assert_allclose(red.stations.sp_mv, v - v[0], atol=1e-9)
+
+
+# ------------------------------------------------------------------ warnings and bad input
+
+def test_warns_on_large_offset_drift_and_days_without_checks():
+    survey, _ = grid_survey(noise=0.0)
+    checks = ElectrodeChecks(time=np.array([DAY1, DAY1 + np.timedelta64(10, "h")], "datetime64[s]"),
+                             offset_mv=np.array([2.0, 7.5]), source_row=np.array([2, 3]),
+                             path="electrode_checks.csv")
+    survey = Survey(stations=survey.stations, faults=(), crs=survey.crs, readings=survey.readings,
+                    electrode_checks=checks, reference_station=survey.reference_station)
+    with pytest.warns(UserWarning) as record:
+        red = reduce_survey(survey, mode="fixed_lead")
+    text = " ".join(str(w.message) for w in record)
+    assert "line 3 (7.5 mV)" in text and "common practice" in text  # offset above 5 mV
+    assert "changed by +5.5 mV on 2026-03-02" in text  # drift above 1 mV/day
+    assert "no electrode check on 2026-03-03" in text
+    assert set(red.warnings) >= {str(w.message) for w in record if "electrode" in str(w.message)}
+    days = red.qc["days"].set_index("day")
+    assert not days.loc[np.datetime64("2026-03-03"), "corrected"]
+    day2 = survey.readings.time >= DAY2
+    npt.assert_allclose(red.qc["legs"]["correction_mv"].to_numpy()[day2], 0.0)
+
+
+def _with_readings(survey, **changes):
+    rd = survey.readings
+    fields = dict(line_id=rd.line_id, from_id=rd.from_id, to_id=rd.to_id, time=rd.time,
+                  dv_mv=rd.dv_mv, source_row=rd.source_row, path=rd.path)
+    fields.update(changes)
+    return Survey(stations=survey.stations, faults=(), crs=survey.crs, readings=Readings(**fields),
+                  reference_station=survey.reference_station)
+
+
+def test_unknown_stations_are_listed_with_rows():
+    survey, _ = grid_survey(offsets=False)
+    to = survey.readings.to_id.copy()
+    to[[3, 5, 7, 9, 11, 13, 15]] = "X-99"
+    with pytest.raises(InputError) as err:
+        reduce_quiet(_with_readings(survey, to_id=to), drift=False)
+    msg = str(err.value)
+    assert "dipoles.csv" in msg and "unknown stations" in msg
+    assert "line 5 (X-99)" in msg and "and 2 more" in msg  # capped list
+
+
+def test_time_running_backwards_and_duplicates_are_input_errors():
+    survey, _ = grid_survey(offsets=False)
+    time = survey.readings.time.copy()
+    time[10] = time[9] - np.timedelta64(600, "s")
+    with pytest.raises(InputError, match=r"time runs backwards .* line 12 \(E0\)"):
+        reduce_quiet(_with_readings(survey, time=time), drift=False)
+    rd = survey.readings
+    dup = {name: np.r_[getattr(rd, name), getattr(rd, name)[4:5]]
+           for name in ("line_id", "from_id", "to_id", "time", "dv_mv")}
+    dup["source_row"] = np.r_[rd.source_row, 999]
+    with pytest.raises(InputError, match=r"duplicate readings .* line 999"):
+        reduce_quiet(_with_readings(survey, **dup), drift=False)
+
+
+def test_network_not_connected_to_reference_names_lines():
+    survey, _ = grid_survey(offsets=False)
+    rd = survey.readings
+    keep = ~np.isin(rd.line_id, ["N0", "N8", "N16", "N24"]) | (rd.line_id == "N0")
+    keep &= ~((rd.line_id == "N0") & np.isin(rd.from_id, ["S02-000", "S03-000"]))
+    sub = {name: getattr(rd, name)[keep] for name in
+           ("line_id", "from_id", "to_id", "time", "dv_mv", "source_row")}
+    with pytest.raises(InputError) as err:
+        reduce_quiet(_with_readings(survey, **sub), drift=False)
+    msg = str(err.value)
+    assert "not connected to the reference station S00-000" in msg
+    assert "E3, E4" in msg and "E0" not in msg.split("(readings")[0]
+
+
+def test_bad_option_is_an_option_error():
+    from geosp.errors import OptionError
+    survey, _ = grid_survey(offsets=False)
+    with pytest.raises(OptionError, match="mode = 'zigzag'"):
+        reduce_survey(survey, mode="zigzag")
