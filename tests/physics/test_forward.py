@@ -13,7 +13,8 @@ from hypothesis import strategies as st
 
 from geosp.errors import InputError
 from geosp.physics import _fast, _kernels, forward
-from geosp.physics import fault_patch_sp, patch_sp_local, pole_pair_sp, sources_sp
+from geosp.physics import (fault_patch_sp, patch_sp_gradient, patch_sp_local, pole_pair_sp,
+                           sources_sp)
 from physics_reference import dipole_sum
 
 ROW6 = dict(centre_m=100.0, length_m=800.0, depth_top_m=150.0, depth_bottom_m=600.0)
@@ -177,6 +178,11 @@ def test_half_plane_reaching_surface_gives_constant_sides():
         sp = patch_sp_local(np.zeros(6), across, **kw)
         npt.assert_allclose(sp[:3], (np.pi - d) / np.pi, atol=1e-5)
         npt.assert_allclose(sp[3:], -d / np.pi, atol=1e-5)
+        # Horizontal gradient → 0: the only edge left is the top edge 1e-3 m
+        # down, whose pull at ≥ 50 m is about f·1e-3/(π·50²) ≈ 1e-7 per m,
+        # against ~f/z_t for a buried patch.
+        grad = patch_sp_gradient(np.zeros(6), across, **kw)
+        npt.assert_allclose(grad, 0.0, atol=1e-6)
     npt.assert_allclose((np.pi - np.radians(60)) / np.pi, 0.6667, atol=1e-4)
 
 

@@ -221,3 +221,17 @@ def test_stations_in_the_plane_are_finite_and_continuous():
     far = _kernels.rectangle_solid_angle_triangles(along, 1e-3, 0.0, *patch)
     npt.assert_allclose(far, _kernels.rectangle_solid_angle(along, 1e-3, 0.0, *patch),
                         atol=1e-12)
+
+
+def test_triangle_points_in_its_plane_are_finite():
+    # Physics notes §2.2: in the plane outside a triangle N = 0 and D > 0,
+    # so Ω = 0; on an edge N = D = 0 and atan2 returns 0 rather than NaN;
+    # just above and below the inside Ω tends to ±2π (a jump of 4π).
+    v1, v2, v3 = np.array([0.0, 0, 0]), np.array([1.0, 0, 0]), np.array([0.0, 1, 0])
+    outside = np.array([[2.0, 2.0, 0.0], [-1.0, 0.5, 0.0], [0.5, -3.0, 0.0]])
+    npt.assert_allclose(_kernels.triangle_solid_angle(outside, v1, v2, v3), 0.0, atol=1e-15)
+    edge = np.array([[0.5, 0.0, 0.0], [0.5, 0.5, 0.0], [0.0, 0.0, 0.0]])
+    assert np.all(np.isfinite(_kernels.triangle_solid_angle(edge, v1, v2, v3)))
+    above = _kernels.triangle_solid_angle(np.array([0.2, 0.2, 1e-9]), v1, v2, v3)
+    below = _kernels.triangle_solid_angle(np.array([0.2, 0.2, -1e-9]), v1, v2, v3)
+    npt.assert_allclose([above, below], [2 * np.pi, -2 * np.pi], atol=1e-7)
