@@ -445,18 +445,22 @@ def _decoy_footprints(segment, n_real, data, corridor, n_decoys, fault_tree, rng
     Place up to ``n_decoys`` copies of the segment's corridor at random
     positions (centred near random stations) and rotations, with the trace at
     least ``corridor`` from every mapped fault and at least ``n_real``
-    stations inside. If fewer than _MIN_DECOYS such places exist, the fault
-    distance is relaxed to corridor/2 (never further: decoys over a real
-    anomaly would inflate the threshold).
+    stations inside. While fewer than _MIN_DECOYS are found, the station
+    count is relaxed to 90 % of n_real (a rotated copy of a footprint that
+    happens to catch whole lines rarely catches as many), and then the fault
+    distance to corridor/2 (never further: decoys over a real anomaly would
+    inflate the threshold).
 
-    Returns (list of (along, across, valid-array index) per decoy, relax).
+    Returns (list of (along, across, valid-array index) per decoy,
+    (fault-distance factor, station fraction) used last).
     """
     length = segment.length_m
     if data.tree is None or n_decoys == 0:
         return [], 0.0
     jitter = data.spacing if np.isfinite(data.spacing) else 0.0
     decoys = []
-    for relax in (1.0, 0.5):
+    for relax, fraction in ((1.0, 1.0), (1.0, 0.9), (0.5, 0.9)):
+        n_need = int(math.ceil(fraction * n_real))
         tries = 0
         while len(decoys) < n_decoys and tries < 20:
             tries += 1
@@ -476,7 +480,7 @@ def _decoy_footprints(segment, n_real, data, corridor, n_decoys, fault_tree, rng
             for k in np.flatnonzero(far):
                 box = np.abs(unit[k]) * (length / 2.0 + corridor) + np.abs(unit[k][::-1]) * corridor
                 near = data.grid.query(centre[k] - box, centre[k] + box)
-                if near.size < n_real:
+                if near.size < n_need:
                     continue
                 de = data.easting[near] - centre[k, 0]
                 dn = data.northing[near] - centre[k, 1]
@@ -484,14 +488,14 @@ def _decoy_footprints(segment, n_real, data, corridor, n_decoys, fault_tree, rng
                 across = de * unit[k, 1] - dn * unit[k, 0]
                 inside = (np.abs(across) <= corridor) & (along >= -corridor) \
                     & (along <= length + corridor)
-                if np.count_nonzero(inside) < n_real:
+                if np.count_nonzero(inside) < n_need:
                     continue
                 decoys.append((along[inside], across[inside], near[inside]))
                 if len(decoys) >= n_decoys:
                     break
-        if len(decoys) >= n_decoys or (relax == 1.0 and len(decoys) >= _MIN_DECOYS):
-            return decoys, relax
-    return decoys, 0.5
+        if len(decoys) >= n_decoys or len(decoys) >= _MIN_DECOYS:
+            return decoys, (relax, fraction)
+    return decoys, (relax, fraction)
 
 
 # --------------------------------------------------------------------------- one segment
@@ -531,7 +535,9 @@ def _detect_segment(segment, pos, data, corridor, depths, ratios, false_alarm_ra
             f"minimum score; decoys' {100 * (1 - false_alarm_rate):g}th percentile {quantile:.1f}"
         if len(decoys) < n_decoys:
             how += f", only {len(decoys)} decoys"
-        if relax < 1.0:
+        if relax[1] < 1.0:
+            how += f", some decoys with ≥ {100 * relax[1]:g} % of its {n} stations"
+        if relax[0] < 1.0:
             how += ", some decoys near mapped faults"
     else:
         threshold = min_score
@@ -583,7 +589,7 @@ def _pole_pair_columns(along, across, poles):
 def _pole_pair_gain(segment, along, across, data, weights, chi2_template, max_depth, spacing):
     """
     BIC(best template) − BIC(best shallow pole pair), both with the regional
-    plane and the same weights; None when no pole pair qualifies. Poles
+    plane and the same weights. Poles
     share a depth ≤ max_depth and lie ≤ 4·max_depth apart; searched on a
     coarse grid of the stations at the regional-removed extremes, then
     polished with bounded least squares.
@@ -602,12 +608,19 @@ def _pole_pair_gain(segment, along, across, data, weights, chi2_template, max_de
     poles = []
     for i in high:
         for j in low:
-            if math.hypot(along[i] - along[j], across[i] - across[j]) > max_sep:
-                continue
-            for h in depth_grid:
-                poles.append((along[i], across[i], along[j], across[j], h))
-    if not poles:
-        return None
+            ds, dt = along[j] - along[i], across[j] - across[i]
+            sep = math.hypot(ds, dt)
+            if sep > max_sep:
+                # Too far apart for one pair: put the other pole max_sep from
+                # this extreme, toward the opposite one (and vice versa).
+                f = max_sep / sep
+                pairs = [(along[i], across[i], along[i] + f * ds, across[i] + f * dt),
+                         (along[j] - f * ds, across[j] - f * dt, along[j], across[j])]
+            else:
+                pairs = [(along[i], across[i], along[j], across[j])]
+            for pair in pairs:
+                for h in depth_grid:
+                    poles.append((*pair, h))
     cols = _pole_pair_columns(along, across, poles)
     gpg, gpd, dpd = _project(cols, along, across, data, weights, ones)
     chi2 = dpd[0] - gpd[0] ** 2 / np.maximum(gpg[0], 1e-300)
