@@ -380,3 +380,109 @@ def test_bad_option_is_an_option_error():
     survey, _ = grid_survey(offsets=False)
     with pytest.raises(OptionError, match="mode = 'zigzag'"):
         reduce_survey(survey, mode="zigzag")
+
+
+# ------------------------------------------------------------------ total field: ties, outliers, terrain
+
+def total_field_survey(values, east, north, *, ids=None, times=None, line=None, upward=None,
+                       faults=(), dem=False, reference=""):
+    n = len(values)
+    st = Stations(station_id=ids if ids is not None else [f"T{i:03d}" for i in range(n)],
+                  easting=east, northing=north,
+                  upward=upward if upward is not None else np.full(n, np.nan), sp_mv=values,
+                  crs="EPSG:32633", line_id=line, time=times)
+    from geosp.models import Raster
+    grid = Raster(easting=np.array([0.0, 1.0]), northing=np.array([0.0, 1.0]),
+                  values=np.zeros((2, 2)), crs="EPSG:32633", units="m") if dem else None
+    return Survey(stations=st, faults=tuple(faults), crs="EPSG:32633", dem=grid,
+                  reference_station=reference)
+
+
+def test_base_ties_remove_linear_drift_and_collapse_repeats():
+    # Fixed-base survey: the base B reoccupied every 2 h; the whole reading set drifts by a
+    # piecewise-linear d(t) with breaks at the reoccupations, which linear interpolation of the
+    # base readings removes exactly (physics.md §4, base ties).
+    rng = np.random.default_rng(4)
+    n_rover = 40
+    t_rover = DAY1 + np.sort(rng.uniform(0, 6 * 3600, n_rover)).astype("timedelta64[s]")
+    t_base = DAY1 + np.array([0, 2, 4, 6]) * np.timedelta64(3600, "s")
+    d_base = np.array([0.0, 3.0, 5.0, 4.0])
+
+    def d(t):
+        return np.interp((t - DAY1).astype(float), (t_base - DAY1).astype(float), d_base)
+
+    east = rng.uniform(0, 1000, n_rover)
+    north = rng.uniform(0, 1000, n_rover)
+    v = true_potential(east, north)
+    ids = ["B"] * 4 + [f"R{i:02d}" for i in range(n_rover)]
+    times = np.r_[t_base, t_rover].astype("datetime64[s]")
+    values = np.r_[np.full(4, 0.0) + d_base, v + d(t_rover)]
+    survey = total_field_survey(values, np.r_[np.full(4, 500.0), east], np.r_[np.full(4, 500.0), north],
+                                ids=ids, times=times, reference="B")
+    red = reduce_quiet(survey)
+    st = red.stations
+    assert len(st) == n_rover + 1 and len(set(st.station_id)) == len(st)
+    npt.assert_allclose(st.sp_mv[1:], v, atol=1e-9)
+    npt.assert_allclose(st.sp_mv[0], 0.0, atol=1e-12)
+    npt.assert_allclose(st.tie_mv[1:], d(t_rover), atol=1e-9)
+    npt.assert_allclose(st.sp_raw_mv[0], d_base.mean())  # the base's raw value: mean of its readings
+    npt.assert_allclose(st.sp_mv, st.sp_raw_mv - st.drift_mv - st.tie_mv - st.terrain_mv, atol=1e-12)
+    assert red.qc["ties"]["max_change_mv"].iloc[0] == 5.0
+    assert red.network == {}
+
+
+def test_total_field_without_repeats_has_zero_ties():
+    east = np.arange(30) * 20.0
+    v = true_potential(east, 0 * east)
+    red = reduce_quiet(total_field_survey(v, east, 0 * east, line=["L"] * 30))
+    npt.assert_array_equal(red.stations.tie_mv, 0.0)
+    npt.assert_allclose(red.stations.sp_mv, v)
+    assert set(red.profiles) == {"L"}
+    npt.assert_allclose(red.profiles["L"]["distance_m"], east)
+
+
+def test_outlier_flagged_with_reason_and_down_weighted_not_dropped():
+    # Running median over 7 stations and 4 x 1.4826 MAD (physics.md §4, common practice).
+    # 2 mV Gaussian noise; a 40 mV spike at station 17 is about 20 sigma out: flagged, and
+    # with this seed no other station exceeds 4 x max(MAD scale, station_sigma_mv).
+    rng = np.random.default_rng(2)
+    east = np.arange(60) * 20.0
+    v = true_potential(east, 0 * east) + rng.normal(0, 2.0, 60)
+    v[17] += 40.0
+    red = reduce_quiet(total_field_survey(v, east, 0 * east, line=["L"] * 60),
+                       station_sigma_mv=2.0)
+    st = red.stations
+    flagged = np.flatnonzero(st.flag != "")
+    assert list(flagged) == [17]
+    assert st.flag[17].startswith("outlier: ") and "mV from the running median" in st.flag[17]
+    assert 30 <= float(st.flag[17].split()[1]) <= 50
+    assert st.weight[17] == 0.25 and np.all(np.delete(st.weight, 17) == 1.0)
+    npt.assert_allclose(st.sp_mv, v)  # never dropped or changed
+    assert len(st) == 60
+
+
+def test_terrain_slope_recovered_away_from_fault_corridor():
+    # SP = b * elevation + a positive anomaly under a ridge along a fault (upflow), 1 mV noise.
+    # True b = -0.8 mV/m. The Theil-Sen slope on stations farther than 300 m from the fault
+    # must bracket b in its 95 % interval; using every station (corridor 0) is biased by the
+    # anomaly that sits on the high ground (the pitfall in physics.md §4).
+    rng = np.random.default_rng(8)
+    e, n = np.meshgrid(np.arange(0, 2000, 50.0), np.arange(0, 2000, 50.0))
+    e, n = e.ravel(), n.ravel()
+    dist = np.abs(e - 1000.0)
+    elev = 600 + 40 * np.exp(-(dist / 400) ** 2) + 0.02 * n
+    sp = -0.8 * elev + 60 * np.exp(-(dist / 100) ** 2) + rng.normal(0, 1.0, e.size)
+    fault = Fault("F1", np.array([[1000.0, -100.0], [1000.0, 2100.0]]))
+    survey = total_field_survey(sp, e, n, upward=elev, faults=[fault], dem=True)
+    red = reduce_quiet(survey, station_sigma_mv=1.0)
+    ter = red.terrain
+    assert ter["applied"] and ter["ci_lo"] <= -0.8 <= ter["ci_hi"]
+    assert abs(ter["slope_mv_per_m"] + 0.8) < 0.05
+    assert ter["n_near_faults"] == np.sum(dist < 300)
+    npt.assert_allclose(red.stations.terrain_mv,
+                        ter["slope_mv_per_m"] * (elev - np.median(elev)), rtol=1e-12)
+    biased = reduce_quiet(survey, station_sigma_mv=1.0, terrain_corridor_m=0.0).terrain
+    assert not (biased["ci_lo"] <= -0.8 <= biased["ci_hi"])
+    # "auto" without a DEM: no terrain correction.
+    no_dem = total_field_survey(sp, e, n, upward=elev, faults=[fault], dem=False)
+    assert not reduce_quiet(no_dem).terrain["applied"]
