@@ -9,8 +9,8 @@ import math
 
 import numpy as np
 
-from . import _kernels
-from .forward import _contrast_factors, patch_sp_local
+from . import _fast, _kernels
+from .forward import _contrast_factors, _flat, _flat_depth
 
 _DEG = math.pi / 180.0
 
@@ -55,15 +55,37 @@ def patch_sp_local_jacobian(along, across, *, centre_m, length_m, depth_top_m,
     rectangles, see
     :func:`geosp.physics._kernels.rectangle_solid_angle_partials`. With a
     conductivity contrast the side factor is constant on each side of the
-    plane, so it scales the derivatives too.
+    plane, so it scales the derivatives too. Uses the compiled kernel when
+    numba is installed.
     """
     along = np.asarray(along, dtype=float)
     across = np.asarray(across, dtype=float)
     offset = np.asarray(depth_offset_m, dtype=float)
     dip = math.radians(dip_deg)
+    if _fast.AVAILABLE:
+        top = np.asarray(depth_top_m + offset, dtype=float)
+        bottom = np.asarray(depth_bottom_m + offset, dtype=float)
+        shape = np.broadcast_shapes(along.shape, across.shape, top.shape, bottom.shape)
+        hw, fw = _contrast_factors(sigma_ratio)
+        sp = np.empty(shape)
+        jac = np.empty(shape + (5,))
+        _fast.patch_sp_jacobian_surface(
+            _flat(along, shape), _flat(across, shape), _flat_depth(top, shape),
+            _flat_depth(bottom, shape), float(centre_m), float(length_m), dip,
+            float(jump_mv), hw, fw, sp.reshape(-1), jac.reshape(-1, 5),
+        )
+        jac[..., 4] *= _DEG
+        return sp, jac
+    return _patch_sp_local_jacobian_numpy(along, across, centre_m, length_m,
+                                          depth_top_m + offset, depth_bottom_m + offset,
+                                          dip, jump_mv, sigma_ratio)
+
+
+def _patch_sp_local_jacobian_numpy(along, across, centre_m, length_m, top, bottom, dip,
+                                   jump_mv, sigma_ratio):
+    """Numpy reference path of :func:`patch_sp_local_jacobian` (depths final, dip in rad)."""
     omega, d_omega = _kernels.rectangle_solid_angle_partials(
-        along, across, 0.0, centre_m, length_m, depth_top_m + offset,
-        depth_bottom_m + offset, dip,
+        along, across, 0.0, centre_m, length_m, top, bottom, dip
     )
     scale = jump_mv / (2 * math.pi) * _side_factor(across, 0.0, dip, sigma_ratio)
     sp = scale * omega

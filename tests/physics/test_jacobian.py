@@ -7,7 +7,7 @@ import numpy as np
 import numpy.testing as npt
 import pytest
 
-from geosp.physics import (JACOBIAN_PARAMETERS, _kernels, patch_sp_gradient, patch_sp_local,
+from geosp.physics import (JACOBIAN_PARAMETERS, _fast, _kernels, patch_sp_gradient, patch_sp_local,
                            patch_sp_local_jacobian)
 
 
@@ -138,3 +138,22 @@ def test_solid_angle_partials_match_triangle_form_differences():
                    - _kernels.rectangle_solid_angle_triangles(along, across, up, *minus)) / (
             2 * step)
         npt.assert_allclose(partials[k], numeric, rtol=1e-5, atol=1e-8 * np.abs(numeric).max())
+
+
+@pytest.mark.skipif(not _fast.AVAILABLE, reason="numba not installed")
+@pytest.mark.parametrize("case", range(len(CASES)))
+def test_compiled_jacobian_matches_numpy_reference(case, monkeypatch):
+    # The numba Jacobian restates the numpy partials; agreement to
+    # round-off (1e-12 of each column's largest value), per-station depths
+    # included.
+    params = dict(CASES[case], depth_offset_m=np.linspace(-30, 30, 60))
+    along, across = stations(case + 40)
+    across[:3] = 0.0  # in-plane stations take the same safety path
+    sp, jac = patch_sp_local_jacobian(along, across, **params)
+    monkeypatch.setattr(_fast, "AVAILABLE", False)
+    sp_ref, jac_ref = patch_sp_local_jacobian(along, across, **params)
+    assert jac_ref.shape == jac.shape == (60, 5)
+    npt.assert_allclose(sp, sp_ref, rtol=0, atol=1e-12 * np.abs(sp_ref).max())
+    for column in range(5):
+        npt.assert_allclose(jac[:, column], jac_ref[:, column], rtol=0,
+                            atol=1e-12 * np.abs(jac_ref[:, column]).max())
