@@ -339,6 +339,13 @@ def sources_frame(rows, crs):
 
     A ``pole_pair`` footprint is the segment joining the two poles buffered
     by the same half-width.
+
+    Sign convention: ``jump_mv`` is the jump of the total potential across
+    the patch, dip-direction side minus the other side; with ``jump_mv > 0``
+    the surface SP is positive on the dip-direction side of the trace.
+    ``dip_dir_deg`` is ``strike_deg + 90`` (right-hand rule); the footprint
+    is built from ``strike_deg`` so the two cannot disagree. Depths are
+    below ground, positive down.
     """
     table, rows = _source_table(rows)
     geometry = gpd.GeoSeries([_footprint(r) for r in rows], crs=crs)
