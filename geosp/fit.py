@@ -418,28 +418,6 @@ _BOUND_LABELS = {"centre": "centre_m", "log_length": "length_m", "log_top": "top
                  "log_neg_depth": "neg_depth_m", "sep_s": "separation_m", "sep_t": "separation_m"}
 
 
-def _interval_from_profile(values, dchi2, best, lo_bound, hi_bound):
-    """Where Δχ²/s² = 1 on each side of the optimum (linear in the signed root)."""
-    values = np.asarray(values, dtype=float)
-    root = np.sign(values - best) * np.sqrt(np.maximum(dchi2, 0.0))
-    order = np.argsort(values)
-    values, root = values[order], root[order]
-    out = []
-    for target, bound in ((-1.0, lo_bound), (1.0, hi_bound)):
-        side = values <= best if target < 0 else values >= best
-        v, q = values[side], root[side]
-        if target < 0:
-            v, q = v[::-1], q[::-1]  # walk outward from the optimum
-        found = bound
-        for i in range(1, len(v)):
-            if (q[i] - target) * (q[i - 1] - target) <= 0 and q[i] != q[i - 1]:
-                w = (target - q[i - 1]) / (q[i] - q[i - 1])
-                found = v[i - 1] + w * (v[i] - v[i - 1])
-                break
-        out.append(found)
-    return out
-
-
 def _covariance(problem, p, x, s2):
     """
     Linearised covariance of (natural nonlinear, linear) parameters: s²(JᵀWJ)⁻¹ by SVD.
@@ -797,23 +775,17 @@ def _intervals(problem, model, p, x, s2, cov_t, uncertainty, rng, mcmc_steps, mc
             continue
         # profile of log z_t
         step = min(max(sd_log, 0.02), 1.0)
-        values, dchi2 = _profile(
+        values, dchi2, lo, hi = _profile(
             p[it], step, model.lower[it], model.upper[it],
-            lambda v, start: problem.local_fit(start, hold=(it, v), max_nfev=60),
+            lambda v, start: problem.local_fit(start, hold=(it, v), max_nfev=100),
             p, chi2_min, s2)
-        lo, hi = _interval_from_profile(values, dchi2, p[it], model.lower[it], model.upper[it])
         top_int = (float(np.exp(lo)), float(np.exp(hi)))
         # profile of the jump (linear parameter held fixed)
         step_f = max(sd_f, 1e-6 * max(abs(x[j]), 1.0))
-        f_values, f_dchi2 = _profile(
+        f_values, f_dchi2, flo, fhi = _profile(
             x[j], step_f, -np.inf, np.inf,
-            lambda v, start: problem.local_fit(start, fixed=(j, v), max_nfev=60),
+            lambda v, start: problem.local_fit(start, fixed=(j, v), max_nfev=100),
             p, chi2_min, s2)
-        flo, fhi = _interval_from_profile(f_values, f_dchi2, x[j], -np.inf, np.inf)
-        if not np.isfinite(flo):
-            flo = lin["jump"][0]
-        if not np.isfinite(fhi):
-            fhi = lin["jump"][1]
         out.append({"top": top_int, "jump": (float(flo), float(fhi))})
         if j == 0:
             profiles["top_depth_m"] = (np.exp(values), dchi2)
@@ -822,24 +794,66 @@ def _intervals(problem, model, p, x, s2, cov_t, uncertainty, rng, mcmc_steps, mc
 
 
 def _profile(best, step, lower, upper, refit, p_best, chi2_min, s2):
-    """Profile Δχ²/s² outward from the optimum until it exceeds 4 or a bound is reached."""
+    """
+    Profile Δχ²/s² of one parameter outward from the optimum.
+
+    Walks with growing steps until Δχ²/s² > 4 or a bound, then refines each
+    crossing of Δχ²/s² = 1 by Brent's method. Returns (values, dchi2, lo, hi);
+    a side that never reaches 1 returns its bound.
+    """
     values, dchi2 = [best], [0.0]
+    crossings = []
+
+    def evaluate(v, start):
+        p, cost = refit(v, start)
+        delta = max(cost - chi2_min, 0.0) / s2
+        values.append(v)
+        dchi2.append(delta)
+        return delta, p
+
     for direction in (-1.0, 1.0):
-        start = p_best.copy()
-        for factor in (0.5, 1.0, 1.5, 2.0, 2.75, 3.5):
-            v = best + direction * factor * step
-            at_bound = False
-            if v <= lower or v >= upper:
-                v = lower if v <= lower else upper
-                at_bound = True
-            start, cost = refit(v, start)
-            delta = max(cost - chi2_min, 0.0) / s2
-            values.append(v)
-            dchi2.append(delta)
-            if delta > 4.0 or at_bound:
+        bound = lower if direction < 0 else upper
+        h = step
+        for _ in range(6):  # shrink a first step that overshoots far past Δ = 4
+            v = float(np.clip(best + direction * h, lower, upper))
+            delta, p = evaluate(v, p_best)
+            if delta <= 9.0:
                 break
+            h /= 3.0
+        prev = (best, 0.0, p_best)
+        crossing = bound
+        for factor in (2.0, 3.0, 4.5, 6.5, 9.0, 13.0, 18.0, None):
+            if delta >= 1.0:
+                crossing = _refine_crossing(prev, (v, delta, p), evaluate)
+                break
+            if v == bound or factor is None:
+                break
+            prev = (v, delta, p)
+            v = float(np.clip(best + direction * h * factor, lower, upper))
+            delta, p = evaluate(v, p)
+        crossings.append(crossing)
     order = np.argsort(values)
-    return np.asarray(values)[order], np.asarray(dchi2)[order]
+    return np.asarray(values)[order], np.asarray(dchi2)[order], crossings[0], crossings[1]
+
+
+def _refine_crossing(inner, outer, evaluate):
+    """Value where Δχ²/s² = 1 between two profile points (Brent on √Δ − 1)."""
+    (v0, d0, p0), (v1, d1, p1) = inner, outer
+    if d0 >= 1.0 or not np.isfinite(v1):
+        return v1
+
+    known = {v0: np.sqrt(d0) - 1.0, v1: np.sqrt(d1) - 1.0}
+
+    def root(v):
+        if v in known:
+            return known[v]
+        return np.sqrt(evaluate(v, p0)[0]) - 1.0
+
+    try:
+        return float(optimize.brentq(root, v0, v1, xtol=1e-3 * abs(v1 - v0), maxiter=12))
+    except (ValueError, RuntimeError):
+        q0, q1 = np.sqrt(d0), np.sqrt(d1)
+        return v0 + (1.0 - q0) / (q1 - q0) * (v1 - v0)
 
 
 def _mcmc_interval(problem, p, s2, cov_t, j, rng, steps, walkers):
