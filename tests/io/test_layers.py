@@ -72,6 +72,29 @@ def test_round_trip_every_layer_and_field(tmp_path):
             else:
                 assert actual.fillna("").tolist() == expected.tolist(), (name, column)
     assert back["fault_segments"]["polarity"].tolist() == [-1, 1]
+    # Field names written out literally from contract.md ("GeoPackage layers").
+    contract = {
+        "stations": ["station_id", "line_id", "sp_mv", "sp_raw_mv", "drift_mv", "terrain_mv",
+                     "tie_mv", "model_mv", "residual_mv", "flag"],
+        "fault_segments": ["fault_id", "segment_id", "length_m", "n_stations", "score",
+                           "detected", "polarity", "note"],
+        "sources": ["source_id", "fault_id", "segment_id", "model", "top_x", "top_y",
+                    "strike_deg", "dip_deg", "dip_dir_deg", "top_depth_m", "bottom_depth_m",
+                    "length_m", "jump_mv", "top_depth_lo_m", "top_depth_hi_m", "jump_lo_mv",
+                    "jump_hi_mv", "rms_mv", "chi2_red", "n_stations", "bic_gain",
+                    "sigma_ratio", "flags"],
+    }
+    contract["sources_3d"] = contract["sources"]
+    text = {"station_id", "line_id", "flag", "fault_id", "segment_id", "note", "source_id",
+            "model", "flags"}
+    integer = {"n_stations", "detected", "polarity"}
+    for name, fields in contract.items():
+        assert list(back[name].columns[:len(fields)]) == fields, name
+        for field in fields:
+            kind = back[name][field].dtype.kind
+            expected = "O" if field in text else "i" if field in integer else "f"
+            # pandas 3 reads text as the str dtype (kind "O" or "T"), not object.
+            assert kind == expected or (expected == "O" and kind in "OTU"), (name, field, kind)
 
 
 def test_layer_styles_readable_and_data_layers_listed(tmp_path):
