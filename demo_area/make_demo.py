@@ -100,7 +100,7 @@ PIPELINE = dict(start_pq=(3650.0, -250.0), end_pq=(4650.0, 1050.0), spacing_m=50
 REGIONAL = dict(gradient_mv_per_km=5.0, azimuth_deg=60.0)
 TERRAIN_SLOPE_MV_PER_M = -0.6
 SOIL_SD_MV = 4.0
-READING_SD_MV = 0.7
+READING_SD_MV = 0.5
 N_OUTLIERS = 7
 BLUNDER = dict(line="L05", from_station="L05-060", to_station="L05-061", error_mv=40.0)
 

@@ -22,6 +22,7 @@ import pyproj
 import pytest
 import rasterio
 from scipy.interpolate import RegularGridInterpolator
+from shapely import Point
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_area"
 CRS = "EPSG:32633"
@@ -248,7 +249,6 @@ def test_truth_sources_follow_contract_schema(truth):
         assert 800 <= src["length_m"] <= 2000 and 60 <= abs(src["jump_mv"]) <= 200
         # The top-edge centre lies top_depth·cot(dip) down-dip of the mapped trace
         # (shapely distance to the reprojected trace; 0.05 m for vertex rounding).
-        from shapely import Point
         offset = src["top_depth_m"] / np.tan(np.radians(src["dip_deg"]))
         distance = faults.geometry[src["fault_id"]].distance(Point(src["top_x"], src["top_y"]))
         assert distance == pytest.approx(offset, abs=0.05)
