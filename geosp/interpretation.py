@@ -15,16 +15,7 @@ import numpy as np
 from . import __version__
 from .models import Raster
 
-CAUTIONS = (
-    "Self-potential interpretation is non-unique: many source distributions fit the same data, and "
-    "the sources shown are models, not observations.",
-    "Depths, extents and strengths carry the stated uncertainties only under the model's assumptions "
-    "(uniform dipole layer on a planar patch, half-space, the terrain treatment described in the report).",
-    "Siting a well is a decision for licensed professionals under local regulations; use these results "
-    "as one line of evidence among geology, geochemistry and other geophysics.",
-    "Field crews must follow local electrical and site-safety practice (power lines, pipelines under "
-    "cathodic protection, thermal ground, steam and gas).",
-)
+from .webmap import CAUTIONS  # noqa: E402  (one wording for map and report)
 
 
 def _station_frame_coords(state):
@@ -129,3 +120,191 @@ def provenance(project, state):
         "environment": {"python": platform.python_version(), "numpy": numpy.__version__,
                         "scipy": scipy.__version__, "platform": platform.platform()},
     }
+
+
+def _fmt(value, digits=0):
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return str(value)
+    if not np.isfinite(value):
+        return "—"
+    return f"{value:.{digits}f}"
+
+
+def _summary_rows(state, title):
+    survey = state.survey
+    st = state.reduction.stations
+    rows = {
+        "Survey": survey.name,
+        "Working CRS": f"{survey.crs} ({survey.crs_note})",
+        "Stations": f"{len(st)} on {len(set(st.line_id) - {''})} lines",
+        "Faults": f"{len(survey.faults)} mapped traces",
+    }
+    if state.detections:
+        n_det = sum(d.detected for d in state.detections)
+        rows["Fault segments"] = f"{len(state.detections)} ({n_det} with a detected dipolar anomaly)"
+    if state.fits is not None:
+        fault_sources = [r for r in state.fits.sources if r["model"] == "fault_patch"]
+        cultural = [r for r in state.fits.sources if r["model"] != "fault_patch"]
+        rows["Fitted fault sources"] = str(len(fault_sources))
+        if cultural:
+            rows["Likely cultural sources"] = str(len(cultural))
+    if state.grid is not None:
+        rows["SP grid"] = (f"{state.grid.method}, cross-validated RMSE {state.grid.cv_rmse_mv:.1f} mV, "
+                           f"masked beyond {state.grid.mask_distance_m:.0f} m from stations")
+    rows["Warnings"] = str(len(state.warnings))
+    return rows
+
+
+def _source_text(row):
+    """Plain-language lines for one source, with its uncertainty ranges."""
+    if row["model"] == "pole_pair":
+        return [f"A shallow pole pair fits the anomaly on segment {row['segment_id']} better than a fault patch "
+                f"(positive pole {_fmt(row['top_depth_m'])} m deep, negative pole {_fmt(row.get('neg_depth_m'))} m "
+                "deep). This pattern is typical of a cultural source — a well casing, a pipeline under cathodic "
+                "protection, a fence or a buried cable — and is not interpreted as a fault source. Check it "
+                "against the infrastructure on site."]
+    lines = [
+        f"Fault-patch source on segment {row['segment_id']} (fault {row['fault_id']}): top of the patch "
+        f"{_fmt(row['top_depth_m'])} m below ground (16–84 %: {_fmt(row.get('top_depth_lo_m'))}–"
+        f"{_fmt(row.get('top_depth_hi_m'))} m), bottom {_fmt(row['bottom_depth_m'])} m, "
+        f"{_fmt(row['length_m'])} m along strike {_fmt(row['strike_deg'])}°, dipping {_fmt(row['dip_deg'])}° "
+        f"toward {_fmt(row['dip_dir_deg'])}°.",
+        f"Potential jump across the patch {_fmt(row['jump_mv'])} mV (16–84 %: {_fmt(row.get('jump_lo_mv'))} to "
+        f"{_fmt(row.get('jump_hi_mv'))} mV); positive means the dip-direction side is positive. "
+        f"RMS misfit {_fmt(row.get('rms_mv'), 1)} mV, reduced χ² {_fmt(row.get('chi2_red'), 2)}, "
+        f"evidence over no source ΔBIC = {_fmt(row.get('bic_gain'))}.",
+    ]
+    if row.get("geo_mean_depth_m") is not None and np.isfinite(row.get("geo_mean_depth_m", np.nan)):
+        lines.append(
+            f"The well-resolved combinations are the geometric-mean depth √(top·bottom) = "
+            f"{_fmt(row['geo_mean_depth_m'])} ± {_fmt(row.get('geo_mean_depth_sd_m'))} m and the strength × height "
+            f"product {_fmt(row.get('jump_height_mv_m'))} ± {_fmt(row.get('jump_height_sd_mv_m'))} mV·m; top depth, "
+            "bottom depth and jump trade off against each other.")
+    if row.get("flags"):
+        lines.append(f"Flags: {row['flags']}.")
+    return lines
+
+
+def report_content(state, *, title):
+    """
+    The report's sections, figures and tables (arguments of :func:`geosp.report.make_report`).
+    """
+    import pandas as pd
+
+    from .figures import detect as detect_figures
+
+    figures, tables, sections = {}, {}, []
+    red = state.reduction
+    st = red.stations
+    intro = [
+        f"This memo presents the reduction and interpretation of {len(st)} self-potential stations of "
+        f"{state.survey.name}. SP values are in mV relative to the reference station"
+        + (f" {state.survey.reference_station}" if state.survey.reference_station else "") + "; distances are "
+        f"in metres in {state.survey.crs}.",
+        "Sign convention: a source's jump is the potential on the dip-direction side of the fault "
+        "(strike + 90°) minus the other side; a positive jump gives positive SP on the dip-direction side.",
+    ]
+    sections.append({"heading": "Scope and method", "text": intro})
+
+    # Reduction QC
+    qc_text = []
+    if red.network:
+        net = red.network
+        qc_text.append(f"Loop closure: χ² = {_fmt(net.get('chi2'), 1)} for {net.get('dof')} independent loops "
+                       f"(p = {_fmt(net.get('p_value'), 3)}).")
+    if red.terrain and red.terrain.get("applied"):
+        t = red.terrain
+        qc_text.append(f"Terrain correction: SP changes by {_fmt(t['slope_mv_per_m'], 2)} mV per metre of elevation "
+                       f"(95 % interval {_fmt(t.get('ci_lo'), 2)} to {_fmt(t.get('ci_hi'), 2)}), estimated from "
+                       f"{t.get('n_used')} stations away from mapped faults; the removed part is in terrain_mv.")
+    n_flag = int(np.sum(st.flag != ""))
+    qc_text.append(f"{n_flag} stations were flagged and down-weighted (never dropped); see the stations layer.")
+    fig_names = []
+    try:
+        from .figures import reduce as reduce_figures
+    except ImportError:
+        reduce_figures = None
+    if reduce_figures is not None:
+        if red.network and hasattr(reduce_figures, "misclosure_figure"):
+            figures["Loop misclosures"] = reduce_figures.misclosure_figure(red)
+            fig_names.append("Loop misclosures")
+        if red.profiles and hasattr(reduce_figures, "profiles_figure"):
+            figures["Profiles before and after reduction"] = reduce_figures.profiles_figure(red)
+            fig_names.append("Profiles before and after reduction")
+    table_names = []
+    for key, caption in (("lines", "Per-line QC"), ("loops", "Per-loop misclosure"), ("days", "Per-day electrode QC"),
+                         ("legs", "Largest standardized residuals")):
+        frame = red.qc.get(key) if red.qc else None
+        if isinstance(frame, pd.DataFrame) and len(frame):
+            tables[caption] = frame.head(25)
+            table_names.append(caption)
+    sections.append({"heading": "Field reduction and QC", "text": qc_text, "figures": fig_names,
+                     "tables": table_names})
+
+    # Grid
+    if state.grid is not None:
+        g = state.grid
+        names = []
+        try:
+            from .figures import grid as grid_figures
+
+            figures["Reduced SP"] = grid_figures.grid_figure(g, st, [f.coords for f in state.survey.faults],
+                                                             title="Reduced SP")
+            names.append("Reduced SP")
+        except ImportError:
+            pass
+        sections.append({"heading": "SP map", "text": [
+            f"Gridded by {g.method}; parameters chosen by spatially blocked cross-validation "
+            f"(RMSE {g.cv_rmse_mv:.1f} mV). Nodes farther than {g.mask_distance_m:.0f} m from a station are blank. "
+            "Sources were fitted to the stations, never to grid nodes."], "figures": names})
+
+    # Detection
+    if state.detections:
+        figures["Fault segments by detection score"] = detect_figures.detection_figure(state.detections, st)
+        tables["Detection"] = detect_figures.detection_table(state.detections)
+        sections.append({"heading": "Dipolar anomalies along faults", "text": [
+            "Each fault segment was scored with a matched filter of fault-patch templates, with a regional plane "
+            "projected out. The threshold for 'detected' is calibrated with decoys: copies of the segment placed "
+            "and rotated at random in the survey away from mapped faults."],
+            "figures": ["Fault segments by detection score"], "tables": ["Detection"]})
+
+    # Sources
+    if state.fits is not None:
+        from .report import source_parameter_table
+
+        try:
+            from .figures import fit as fit_figures
+        except ImportError:
+            fit_figures = None
+        sections.append({"heading": "Fitted sources", "text": [
+            "Each detected segment was fitted by variable-projection least squares with a quasi-random multi-start; "
+            "models with no source, one patch, two patches and a shallow pole pair were compared by BIC. "
+            "Ranges are 16th–84th percentiles from profile likelihood."]})
+        by_segment = {f.segment.segment_id: f for f in state.fits.fits}
+        for row in state.fits.sources:
+            fit = by_segment.get(row["segment_id"])
+            names, tnames = [], []
+            if fit_figures is not None and fit is not None:
+                label = f"{row['source_id']}: observed and modelled SP across the fault"
+                figures[label] = fit_figures.profiles_figure(fit, st)
+                names.append(label)
+                if fit.profiles:
+                    label = f"{row['source_id']}: profile likelihood"
+                    figures[label] = fit_figures.likelihood_figure(fit)
+                    names.append(label)
+            tables[f"{row['source_id']}: parameters"] = source_parameter_table(row)
+            tnames.append(f"{row['source_id']}: parameters")
+            if fit is not None and isinstance(fit.selection, pd.DataFrame):
+                tables[f"{row['source_id']}: model selection"] = fit.selection
+                tnames.append(f"{row['source_id']}: model selection")
+            sections.append({"heading": f"Source {row['source_id']}", "level": 3, "text": _source_text(row),
+                             "figures": names, "tables": tnames})
+        if not state.fits.sources:
+            sections.append({"heading": "No sources", "level": 3,
+                             "text": ["No segment passed model selection; no source is reported."]})
+    if state.warnings:
+        sections.append({"heading": "Warnings", "text": list(state.warnings)})
+    return {"title": title, "survey_summary": _summary_rows(state, title), "sections": sections,
+            "figures": figures, "tables": tables, "cautions": CAUTIONS}

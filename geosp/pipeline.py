@@ -533,7 +533,7 @@ def write_outputs(project, state, out, *, publish=False, say=None):
             from .report import make_report
 
             content = interpretation.report_content(state, title=title)
-            html = make_report(**content)
+            html = make_report(**content, provenance=interpretation.provenance(project, state))
             with atomic_path(out / "report.html") as tmp:
                 tmp.write_text(html, encoding="utf-8")
             written.append("report.html")
