@@ -406,7 +406,9 @@ def _source_calls(sources):
         label = f"row {index}"
         if "source_id" in row and row["source_id"] is not None:
             label += f" (source_id {row['source_id']})"
-        model = row.get("model", "fault_patch")
+        model = row.get("model")
+        if model is None or model == "" or (isinstance(model, float) and math.isnan(model)):
+            model = "fault_patch"
         if model == "fault_patch":
             fields = _PATCH_FIELDS
         elif model == "pole_pair":
@@ -468,7 +470,8 @@ def sources_sp(coordinates, sources, *, chunk_size=_DEFAULT_CHUNK):
         ground_m; see :func:`fault_patch_sp`) or ``"pole_pair"`` (positive
         pole at top_x, top_y, top_depth_m; negative pole at neg_x, neg_y,
         neg_depth_m; strength pole_k_mv_m in mV·m; optional ground_m; see
-        :func:`pole_pair_sp`). A missing ``model`` means ``fault_patch``.
+        :func:`pole_pair_sp`). A missing or empty ``model`` means
+        ``fault_patch``; other fields of the layer are ignored.
     chunk_size : int
         Stations evaluated at a time; memory grows with it, not with the
         number of stations times sources. Default 65536.

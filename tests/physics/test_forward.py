@@ -301,6 +301,10 @@ def test_sources_sp_sums_rows_and_chunks_identically():
     # A DataFrame (NaN where a field does not apply) gives the same answer.
     frame = pd.DataFrame(rows)
     npt.assert_array_equal(sources_sp((e, n, up), frame, chunk_size=100), whole)
+    # A row without a model is a fault patch; extra layer fields are ignored.
+    bare = {k: v for k, v in a.items() if k != "model"}
+    bare.update(fault_id="F1", flags="", top_depth_lo_m=np.nan)
+    npt.assert_array_equal(sources_sp((e, n, up), [bare]), sources_sp((e, n, up), [a]))
     # Shape of the station arrays is kept.
     grid = sources_sp((e[:1000].reshape(20, 50), n[:1000].reshape(20, 50)), rows)
     assert grid.shape == (20, 50)
