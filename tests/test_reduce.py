@@ -486,3 +486,25 @@ def test_terrain_slope_recovered_away_from_fault_corridor():
     # "auto" without a DEM: no terrain correction.
     no_dem = total_field_survey(sp, e, n, upward=elev, faults=[fault], dem=False)
     assert not reduce_quiet(no_dem).terrain["applied"]
+
+
+# ------------------------------------------------------------------ figures
+
+def test_figures_are_labelled_matplotlib_figures():
+    from matplotlib.figure import Figure
+
+    from geosp.figures.reduce import drift_figure, misclosure_figure, profiles_figure
+    survey, _ = grid_survey(noise=1.0, seed=3, blunder=(30, 40.0))
+    red = reduce_quiet(survey, mode="fixed_lead")
+    for fig in (misclosure_figure(red), profiles_figure(red, max_lines=3), drift_figure(red)):
+        assert isinstance(fig, Figure)
+        axes = [ax for ax in fig.axes if ax.get_visible()]
+        assert all(ax.get_title() and ax.get_xlabel() for ax in axes)
+        assert all("(" in ax.get_ylabel() for ax in axes)  # units in the label
+        fig.canvas.draw()  # renders with the Agg canvas
+    assert len(profiles_figure(red, max_lines=3).axes) == 3
+    assert misclosure_figure(red).axes[0].get_title().startswith("Loop misclosures: χ²")
+    # A total-field survey has no loops and no checks: a one-panel note, no error.
+    east = np.arange(10) * 20.0
+    tf = reduce_quiet(total_field_survey(true_potential(east, 0 * east), east, 0 * east))
+    assert isinstance(misclosure_figure(tf), Figure) and isinstance(drift_figure(tf), Figure)
