@@ -138,10 +138,16 @@ def main():
     few = slice(0, 20)
     reference = patch_sp_local(along[few], across[few], **PATCH)
     print("max |difference| from production at 20 stations (f = 1):")
-    print(f"  numpy closed form {np.abs(_kernels.patch_potential(along[few], across[few], 0.0, *GEOMETRY, 1.0) - reference).max():.2e}")
-    print(f"  two triangles     {np.abs(_kernels.rectangle_solid_angle_triangles(along[few], across[few], 0.0, *GEOMETRY) / (2 * np.pi) - reference).max():.2e}")
-    print(f"  dipole sum 50x50  {np.abs(dipole_sum(along[few], across[few], 50) - reference).max():.2e}")
-    print(f"  dblquad           {np.abs(quadrature(along[few], across[few]) - reference).max():.2e}")
+    others = {
+        "numpy closed form": _kernels.patch_potential(along[few], across[few], 0.0, *GEOMETRY,
+                                                      1.0),
+        "two triangles": _kernels.rectangle_solid_angle_triangles(
+            along[few], across[few], 0.0, *GEOMETRY) / (2 * np.pi),
+        "dipole sum 50x50": dipole_sum(along[few], across[few], 50),
+        "dblquad": quadrature(along[few], across[few]),
+    }
+    for name, values in others.items():
+        print(f"  {name:18s}{np.abs(values - reference).max():.2e}")
 
     n_mem = 200_000 if args.quick else 1_000_000
     m_mem = 20 if args.quick else 100

@@ -288,9 +288,10 @@ def test_sources_sp_sums_rows_and_chunks_identically():
     up = 120.0 + rng.uniform(-30, 30, 1001)
     rows = make_sources()
     a, b, c = rows
+    skip = ("source_id", "model")
     expected = (
-        fault_patch_sp((e, n, up), **{k: v for k, v in a.items() if k not in ("source_id", "model")})
-        + fault_patch_sp((e, n, up), **{k: v for k, v in b.items() if k not in ("source_id", "model")})
+        fault_patch_sp((e, n, up), **{k: v for k, v in a.items() if k not in skip})
+        + fault_patch_sp((e, n, up), **{k: v for k, v in b.items() if k not in skip})
         + pole_pair_sp((e, n, up), pos_x=400.0, pos_y=400.0, pos_depth_m=20.0, neg_x=450.0,
                        neg_y=300.0, neg_depth_m=35.0, k_mv_m=500.0)
     )
