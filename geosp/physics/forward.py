@@ -63,6 +63,8 @@ def patch_sp_local(along, across, *, centre_m, length_m, depth_top_m, depth_bott
         terrain error near 1 % of the peak for broad relief of height 0.2·z_t
         and 4 % for 0.5·z_t (against 8 % and 18 % for a flat datum); relief
         above 0.2·z_t or slopes above about 15° deserve 5–10 % model error.
+        The shifted top depth must stay positive (not checked here, for
+        speed): a station below the patch top is outside the model.
 
     Returns
     -------
