@@ -89,7 +89,8 @@ def write_forward_output(stations, out):
             stations.to_file(tmp, layer="forward", driver="GPKG")
         else:
             frame = pd.DataFrame(stations.drop(columns="geometry"))
-            frame.insert(0, "y", stations.geometry.y)
-            frame.insert(0, "x", stations.geometry.x)
+            for column, values in (("y", stations.geometry.y), ("x", stations.geometry.x)):
+                if column not in frame:
+                    frame.insert(0, column, values)
             frame.to_csv(tmp, index=False)
     return out
