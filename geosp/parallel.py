@@ -149,7 +149,7 @@ def _map_dask(func, items, scheduler, progress):
             "Install it with: pip install 'geosp[dask]' (or pip install 'dask[distributed]').",
         ) from err
     try:
-        client = Client(scheduler, timeout="20s", set_as_default=False)
+        client = Client(scheduler, timeout="20s")
     except OSError as err:
         raise OptionError(
             "scheduler", f"cannot reach the Dask scheduler at {scheduler} ({err}).",
