@@ -19,8 +19,9 @@ it against a dense ``numpy.linalg.lstsq`` solution.
 
 Covariances: the junction covariance entries that are needed (diagonal and
 the two ends of each chain) are taken from the exact inverse of the junction
-normal matrix, computed column block by column block with the LU factors
-(exact up to ``EXACT_MAX_JUNCTIONS`` free junctions). Above that size a
+normal matrix: a dense inverse up to ``DENSE_MAX_JUNCTIONS`` free junctions,
+then column block by column block with the sparse LU factors (exact up to
+``EXACT_MAX_JUNCTIONS`` free junctions). Above that size a
 random-projection estimate with ``N_PROBES`` probes is used (relative error
 about sqrt(2 / N_PROBES), roughly 14 %). Interior-node variances add the
 Brownian-bridge term ``c (C - c) / C`` of their chain, which is exact.
@@ -34,6 +35,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import splu
 
+DENSE_MAX_JUNCTIONS = 4000
 EXACT_MAX_JUNCTIONS = 20000
 N_PROBES = 100
 _BLOCK = 256
@@ -105,7 +107,13 @@ def adjust_network(n_nodes, from_index, to_index, observed, variance, reference)
         normal = (design.T @ sp.diags(w) @ design).tocsc()
         lu = splu(normal)
         xj[free] = lu.solve(design.T @ (w * cs[rows]))
-        if len(free) <= EXACT_MAX_JUNCTIONS:
+        if len(free) <= DENSE_MAX_JUNCTIONS:
+            q = _dense_spd_inverse(normal.toarray())  # upper triangle valid
+            q_diag[free] = np.diag(q)
+            sel = (col[ca] >= 0) & (col[cb] >= 0)
+            i, j = col[ca][sel], col[cb][sel]
+            q_ab[sel] = q[np.minimum(i, j), np.maximum(i, j)]
+        elif len(free) <= EXACT_MAX_JUNCTIONS:
             _selected_inverse(lu, len(free), free, col, ca, cb, q_diag, q_ab)
         else:
             method = "random-projection"
@@ -218,6 +226,18 @@ def _series_chains(n, f, t, obs, var, junction):
         "edge_chain": edge_chain, "edge_sign": edge_sign,
         "node_chain": node_chain, "node_sum": node_sum, "node_var": node_var,
     }
+
+
+def _dense_spd_inverse(matrix):
+    """Inverse of a symmetric positive-definite matrix by Cholesky (LAPACK potrf/potri)."""
+    from scipy.linalg import lapack
+    factor, info = lapack.dpotrf(matrix, lower=False, clean=True)
+    if info != 0:
+        return np.linalg.inv(matrix)
+    inverse, info = lapack.dpotri(factor, lower=False)
+    if info != 0:
+        return np.linalg.inv(matrix)
+    return inverse
 
 
 def _selected_inverse(lu, n_free, free, col, ca, cb, q_diag, q_ab):

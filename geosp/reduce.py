@@ -654,11 +654,13 @@ def _integrate_tree(n, f, t, dv, corr, ref):
 def _loop_table(res, node_ids, line):
     chains = res["chains"]
     ec = res["edge_chain"]
-    chain_lines = pd.Series(line).groupby(ec).agg(lambda s: sorted(set(s)))
+    chain_lines = [set() for _ in range(len(chains["a"]))]
+    for c, name in zip(ec.tolist(), line.tolist()):
+        chain_lines[c].add(name)
     rows = []
     for i, loop in enumerate(res["loops"]):
         k = loop["closing_chain"]
-        names = sorted({name for c in loop["chains"] for name in chain_lines.get(c, [])})
+        names = sorted(set().union(*(chain_lines[c] for c in loop["chains"])))
         rows.append({
             "loop": i + 1,
             "closing_from": node_ids[chains["a"][k]], "closing_to": node_ids[chains["b"][k]],
@@ -784,12 +786,13 @@ def _terrain_effect(value, st, faults, flag, notes, *, apply, corridor_m, min_st
 
 def _line_table(st, lines, legs):
     rows = []
+    by_line = legs.groupby("line_id", sort=False).indices if legs is not None and len(legs) else {}
     for name, idx in lines.items():
         row = {"line_id": name, "n_stations": len(idx),
                "max_abs_tie_mv": float(np.nanmax(np.abs(st.tie_mv[idx]))) if len(idx) else np.nan,
                "n_flagged": int(np.sum(st.flag[idx] != ""))}
-        if legs is not None and len(legs):
-            sel = legs[legs["line_id"] == name]
+        if name in by_line:
+            sel = legs.iloc[by_line[name]]
             row.update(n_readings=len(sel), sum_dv_mv=float(sel["dv_mv"].sum()),
                        sum_correction_mv=float(sel["correction_mv"].sum()),
                        max_abs_std_residual=float(np.nanmax(np.abs(sel["std_residual"])))

@@ -86,6 +86,7 @@ def test_random_projection_fallback_close_to_exact(monkeypatch):
     import geosp._network as net
     n, f, t, obs, var = random_network(5, n=60, extra=30)
     exact = adjust_network(n, f, t, obs, var, 0)
+    monkeypatch.setattr(net, "DENSE_MAX_JUNCTIONS", 0)
     monkeypatch.setattr(net, "EXACT_MAX_JUNCTIONS", 0)
     approx = net.adjust_network(n, f, t, obs, var, 0)
     assert approx["covariance"] == "random-projection"
@@ -93,3 +94,18 @@ def test_random_projection_fallback_close_to_exact(monkeypatch):
     ratio = approx["sigma"][1:] / exact["sigma"][1:]
     assert np.all(np.abs(ratio - 1) < 0.35)
     assert abs(np.mean(ratio**2) - 1) < 0.10
+
+
+def test_blocked_selected_inverse_matches_dense(monkeypatch):
+    # The column-block sparse-LU path for mid-size networks must give the same exact
+    # covariances as the dense LAPACK path and the independent dense lstsq reference.
+    import geosp._network as net
+    n, f, t, obs, var = random_network(6, n=80, extra=25)
+    monkeypatch.setattr(net, "DENSE_MAX_JUNCTIONS", 0)
+    monkeypatch.setattr(net, "_BLOCK", 7)  # several blocks
+    res = net.adjust_network(n, f, t, obs, var, 10)
+    x, sigma, resid, _ = dense_solution(n, f, t, obs, var, 10)
+    assert res["covariance"] == "exact"
+    npt.assert_allclose(res["potential"], x, atol=1e-10)
+    npt.assert_allclose(res["sigma"], sigma, atol=1e-10)
+    npt.assert_allclose(res["residual"], resid, atol=1e-10)
