@@ -12,6 +12,7 @@ from __future__ import annotations
 import logging
 import os
 import tempfile
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -109,15 +110,18 @@ def _warp_band(src, band, target):
     """Reproject one band to a north-up grid in ``target`` (bilinear); NaN for nodata."""
     from rasterio.warp import Resampling, calculate_default_transform, reproject
 
-    transform, width, height = calculate_default_transform(
-        src.crs, target, src.width, src.height, *src.bounds)
-    source = src.read(band, masked=True).astype("float64").filled(np.nan)
-    destination = np.full((height, width), np.nan)
-    reproject(
-        source, destination, src_transform=src.transform, src_crs=src.crs,
-        src_nodata=np.nan, dst_transform=transform, dst_crs=target, dst_nodata=np.nan,
-        resampling=Resampling.bilinear,
-    )
+    with warnings.catch_warnings():
+        # rasterio's own use of the affine package raises PendingDeprecationWarning.
+        warnings.simplefilter("ignore", PendingDeprecationWarning)
+        transform, width, height = calculate_default_transform(
+            src.crs, target, src.width, src.height, *src.bounds)
+        source = src.read(band, masked=True).astype("float64").filled(np.nan)
+        destination = np.full((height, width), np.nan)
+        reproject(
+            source, destination, src_transform=src.transform, src_crs=src.crs,
+            src_nodata=np.nan, dst_transform=transform, dst_crs=target, dst_nodata=np.nan,
+            resampling=Resampling.bilinear,
+        )
     return destination, transform
 
 
@@ -154,7 +158,6 @@ def write_geotiff(raster, path, *, nodata=-9999.0, tags=None):
         If the folder does not exist or finite values equal ``nodata``.
     """
     import rasterio
-    from rasterio.transform import from_origin
 
     path = Path(path)
     if not path.parent.is_dir():
@@ -174,7 +177,7 @@ def write_geotiff(raster, path, *, nodata=-9999.0, tags=None):
     # Half-cell shift: node centres -> outer edges; row flip: south-up -> north-up.
     west_edge = raster.easting[0] - d_east / 2
     north_edge = raster.northing[-1] + d_north / 2
-    transform = from_origin(west_edge, north_edge, d_east, d_north)
+    transform = rasterio.Affine(d_east, 0.0, west_edge, 0.0, -d_north, north_edge)
     band = np.flipud(np.where(finite, values, nodata)).astype("float32")
 
     all_tags = {str(k): _tag_text(v) for k, v in dict(raster.tags).items()}
