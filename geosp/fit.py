@@ -670,6 +670,10 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
             elevation = np.asarray(stations.upward, dtype=float)[index][used]
             sources += _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals,
                                    s, t, elevation)
+            if model.patches(p)[1] > 90.0 and "jump_mv" in profiles:
+                # report the jump profile in the contract's sign (dip-direction side minus other)
+                values, dchi2 = profiles["jump_mv"]
+                profiles["jump_mv"] = (-values[::-1], dchi2[::-1])
     flags = list(dict.fromkeys(flags))
 
     predicted = np.full(index.size, np.nan)
@@ -968,6 +972,8 @@ def _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals, s, t,
             "top_depth_sd_m": float(sd[f"top_depth_m{suffix}"]),
             "bottom_depth_sd_m": float(sd[f"bottom_depth_m{suffix}"]),
             "dip_sd_deg": float(sd["dip_deg"]),
+            "jump_sd_mv": float(sd[f"jump_mv{suffix}"]),
+            "length_sd_m": float(sd[f"length_m{suffix}"]),
             "location_sd_m": float(np.sqrt(max(grad_loc @ cov @ grad_loc, 0.0))),
         }
         rows.append(row)
@@ -1003,7 +1009,8 @@ def _pole_row(segment, model, p, x, cov, names, stats, flags):
         "geo_mean_depth_m": np.nan, "geo_mean_depth_sd_m": np.nan,
         "jump_height_mv_m": np.nan, "jump_height_sd_mv_m": np.nan,
         "top_depth_sd_m": float(sd.get("pos_depth_m", np.nan)),
-        "bottom_depth_sd_m": np.nan, "dip_sd_deg": np.nan,
+        "bottom_depth_sd_m": np.nan, "dip_sd_deg": np.nan, "jump_sd_mv": np.nan,
+        "length_sd_m": np.nan,
         "location_sd_m": float(np.hypot(sd.get("pos_s_m", np.nan), sd.get("pos_t_m", np.nan))),
         "neg_x": float(nx), "neg_y": float(ny), "neg_depth_m": float(neg_z),
         "pole_k_mv_m": k,

@@ -7,6 +7,8 @@ with Gaussian noise from a fixed seed; the fit must recover the known
 sources within tolerances derived from the linearised 1-sigma of each setup.
 """
 
+from dataclasses import replace
+
 import numpy as np
 import numpy.testing as npt
 import pytest
@@ -207,7 +209,7 @@ def test_source_rows_have_contract_fields():
                 "rms_mv", "chi2_red", "n_stations", "bic_gain", "sigma_ratio", "flags"]
     extra = ["geo_mean_depth_m", "geo_mean_depth_sd_m", "jump_height_mv_m",
              "jump_height_sd_mv_m", "top_depth_sd_m", "bottom_depth_sd_m", "dip_sd_deg",
-             "location_sd_m"]
+             "jump_sd_mv", "length_sd_m", "location_sd_m"]
     (row,) = fit.sources
     assert list(row) == contract + extra
     assert row["source_id"] == "F1-1-P1" and isinstance(row["flags"], str)
@@ -298,7 +300,7 @@ def test_profile_interval_coverage():
     truth = {"centre_m": 1000.0, "length_m": 1500.0, "top": 150.0, "bottom": 600.0,
              "dip": 90.0, "jump": 100.0}
     segment = make_segment()
-    hits = 0
+    hits = jump_hits = 0
     n_real = 120
     for k in range(n_real):
         stations, detection = make_survey(segment, truth=truth, noise_mv=3.0, n_lines=3,
@@ -307,7 +309,9 @@ def test_profile_interval_coverage():
                           n_local=2, seed=k)
         row = fit.sources[0]
         hits += row["top_depth_lo_m"] <= truth["top"] <= row["top_depth_hi_m"]
+        jump_hits += row["jump_lo_mv"] <= truth["jump"] <= row["jump_hi_mv"]
     assert 0.60 <= hits / n_real <= 0.76
+    assert 0.60 <= jump_hits / n_real <= 0.76
 
 
 @pytest.mark.slow
@@ -325,3 +329,42 @@ def test_mcmc_interval_agrees_with_profile():
     width = prof["top_depth_hi_m"] - prof["top_depth_lo_m"]
     assert abs(mcmc["top_depth_lo_m"] - prof["top_depth_lo_m"]) < 0.25 * width
     assert abs(mcmc["top_depth_hi_m"] - prof["top_depth_hi_m"]) < 0.25 * width
+
+
+def test_figures_and_parameter_table():
+    from matplotlib.figure import Figure
+
+    from geosp.figures.fit import likelihood_figure, parameter_table, profiles_figure
+
+    truth = dict(TRUTH, dip=120.0)  # flipped dip: the jump is reported negated
+    segment = make_segment(dip_known=False, dip_deg=np.nan)
+    stations, detection = make_survey(segment, truth=truth, n_lines=5, spacing_m=50.0)
+    fit = fit_segment(stations, detection, models=("fault_patch",), **FAST)
+    row = fit.sources[0]
+    table = parameter_table(fit).set_index("parameter")
+    top = table.loc["top depth (m)"]
+    assert top["value"] == row["top_depth_m"] and top["p16"] == row["top_depth_lo_m"]
+    jump = table.loc["jump (mV)"]
+    assert jump["p16"] < jump["value"] < jump["p84"] and jump["value"] < 0
+    dip = table.loc["dip (°)"]  # linearised ±1σ where no interval is computed
+    assert dip["interval"] == "±1σ" and dip["p84"] - dip["p16"] == pytest.approx(2 * dip["sd"])
+
+    figure = profiles_figure(fit, stations)
+    assert isinstance(figure, Figure) and len(figure.axes) == 4
+    ax = figure.axes[0]
+    lines = {line.get_label(): line for line in ax.get_lines()}
+    obs_x = ax.containers[0].lines[0].get_xdata()
+    obs_y = ax.containers[0].lines[0].get_ydata()
+    npt.assert_allclose(lines["residual"].get_ydata(), obs_y - lines["model"].get_ydata())
+    npt.assert_allclose(lines["model"].get_xdata(), obs_x)
+
+    figure = likelihood_figure(fit)
+    assert len(figure.axes) == 2
+    for ax, lo, hi in zip(figure.axes, ("top_depth_lo_m", "jump_lo_mv"),
+                          ("top_depth_hi_m", "jump_hi_mv")):
+        values, dchi2 = ax.get_lines()[0].get_data()
+        # the curve passes through Δχ²/s² = 1 at the reported 16 % and 84 % bounds
+        for bound in (row[lo], row[hi]):
+            assert np.interp(bound, values, dchi2) == pytest.approx(1.0, abs=0.02)
+    empty = likelihood_figure(replace(fit, profiles={}))
+    assert len(empty.axes) == 1

@@ -1,0 +1,176 @@
+"""Figures and tables of the fit step: profiles across the fault, likelihood curves, parameters."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+#: Rows of :func:`parameter_table` per fault-patch source: (label, value field, 1σ field,
+#: 16 % field, 84 % field); missing fields are blank.
+_PATCH_PARAMETERS = (
+    ("top depth (m)", "top_depth_m", "top_depth_sd_m", "top_depth_lo_m", "top_depth_hi_m"),
+    ("bottom depth (m)", "bottom_depth_m", "bottom_depth_sd_m", None, None),
+    ("geometric-mean depth √(z_t z_b) (m)", "geo_mean_depth_m", "geo_mean_depth_sd_m",
+     None, None),
+    ("jump (mV)", "jump_mv", "jump_sd_mv", "jump_lo_mv", "jump_hi_mv"),
+    ("jump × height (mV·m)", "jump_height_mv_m", "jump_height_sd_mv_m", None, None),
+    ("length (m)", "length_m", "length_sd_m", None, None),
+    ("dip (°)", "dip_deg", "dip_sd_deg", None, None),
+    ("strike (°)", "strike_deg", None, None, None),
+    ("trace position across strike (m, 1σ)", None, "location_sd_m", None, None),
+    ("conductivity ratio", "sigma_ratio", None, None, None),
+)
+_POLE_PARAMETERS = (
+    ("positive pole depth (m)", "top_depth_m", "top_depth_sd_m", None, None),
+    ("negative pole depth (m)", "neg_depth_m", None, None, None),
+    ("pole strength k (mV·m)", "pole_k_mv_m", None, None, None),
+)
+
+
+def _value(row, key):
+    if key is None or key not in row:
+        return np.nan
+    try:
+        return float(row[key])
+    except (TypeError, ValueError):
+        return np.nan
+
+
+def parameter_table(fit):
+    """
+    Parameters of the chosen sources of one segment with their uncertainties.
+
+    Parameters
+    ----------
+    fit : SegmentFit
+
+    Returns
+    -------
+    table : pandas.DataFrame
+        Columns ``source_id``, ``parameter`` (with units), ``value``,
+        ``sd`` (linearised 1σ), ``p16`` and ``p84`` (16th and 84th
+        percentiles) and ``interval`` ("profile"/"mcmc" when the bounds
+        come from the fit's interval method, "±1σ" when they are the
+        linearised value ± 1σ, blank when unknown). Empty when no source was
+        accepted.
+    """
+    rows = []
+    for source in fit.sources:
+        spec = _POLE_PARAMETERS if source.get("model") == "pole_pair" else _PATCH_PARAMETERS
+        for label, key, sd_key, lo_key, hi_key in spec:
+            value, sd = _value(source, key), _value(source, sd_key)
+            lo, hi = _value(source, lo_key), _value(source, hi_key)
+            how = "interval"
+            if not (np.isfinite(lo) and np.isfinite(hi)):
+                how = "±1σ" if np.isfinite(value) and np.isfinite(sd) else ""
+                lo, hi = (value - sd, value + sd) if how else (np.nan, np.nan)
+            rows.append({"source_id": source["source_id"], "parameter": label, "value": value,
+                         "sd": sd, "p16": lo, "p84": hi, "interval": how})
+    return pd.DataFrame(rows, columns=["source_id", "parameter", "value", "sd", "p16", "p84",
+                                       "interval"])
+
+
+def profiles_figure(fit, stations, *, n_profiles=None):
+    """
+    Observed, modelled and residual SP along profiles across the fault.
+
+    Stations of the fit are grouped by their along-strike position into 2–4
+    bins (quantiles) and plotted against their distance across the trace
+    (toward the dip direction of the segment's local frame).
+
+    Parameters
+    ----------
+    fit : SegmentFit
+    stations : Stations
+        The stations the fit's ``station_index`` refers to.
+    n_profiles : int or None
+        Number of profiles (2–4); by default 4 with at least 80 stations,
+        3 with 40, else 2.
+
+    Returns
+    -------
+    figure : matplotlib.figure.Figure
+    """
+    index = np.asarray(fit.station_index, dtype=int)
+    segment = fit.segment
+    s, t = segment.to_local(np.asarray(stations.easting)[index],
+                            np.asarray(stations.northing)[index])
+    s, t = np.asarray(s, float), np.asarray(t, float)
+    observed = np.asarray(stations.sp_mv, dtype=float)[index]
+    model = np.asarray(fit.predicted_mv, dtype=float)
+    residual = observed - model
+    sigma = np.asarray(stations.sigma_mv, dtype=float)[index]
+    finite = np.isfinite(residual)
+    if not np.all(np.isfinite(sigma)):
+        scatter = np.std(residual[finite]) if finite.any() else np.nan
+        sigma = np.where(np.isfinite(sigma), sigma, scatter)
+    if n_profiles is None:
+        n_profiles = 4 if index.size >= 80 else 3 if index.size >= 40 else 2
+    n_profiles = int(np.clip(n_profiles, 2, 4))
+    edges = np.quantile(s, np.linspace(0.0, 1.0, n_profiles + 1)) if s.size else [0, 1]
+    figure = Figure(figsize=(8.0, 2.4 * n_profiles + 0.6), layout="constrained")
+    axes = figure.subplots(n_profiles, 1, sharex=True, squeeze=False)[:, 0]
+    for k, ax in enumerate(axes):
+        upper = s <= edges[k + 1] if k == n_profiles - 1 else s < edges[k + 1]
+        pick = np.flatnonzero((s >= edges[k]) & upper)
+        pick = pick[np.argsort(t[pick])]
+        if pick.size:
+            ax.errorbar(t[pick], observed[pick], yerr=sigma[pick], fmt="o", ms=3, color="0.2",
+                        ecolor="0.6", elinewidth=0.8, label="observed")
+            ax.plot(t[pick], model[pick], "-", color="tab:red", lw=1.5, label="model")
+            ax.plot(t[pick], residual[pick], ".", color="tab:blue", ms=4, label="residual")
+        ax.axvline(0.0, color="0.5", lw=0.8, ls="--")
+        ax.axhline(0.0, color="0.8", lw=0.6)
+        ax.set_ylabel("SP (mV)")
+        ax.set_title(f"along strike {edges[k]:.0f}–{edges[k + 1]:.0f} m", fontsize=9, loc="left")
+        if k == 0:
+            ax.legend(fontsize=8, loc="best")
+    axes[-1].set_xlabel("distance across the trace, toward strike + 90° (m)")
+    figure.suptitle(f"Segment {segment.segment_id}: chosen model {fit.chosen}", fontsize=10)
+    return figure
+
+
+def likelihood_figure(fit):
+    """
+    Profile-likelihood curves (Δχ²/s²) of the first source's top depth and jump.
+
+    The dashed line Δχ²/s² = 1 meets each curve at the 16 % and 84 % bounds.
+
+    Parameters
+    ----------
+    fit : SegmentFit
+
+    Returns
+    -------
+    figure : matplotlib.figure.Figure
+        One panel per curve in ``fit.profiles``; a note when there is none
+        (no source accepted, or another uncertainty method).
+    """
+    names = [name for name in ("top_depth_m", "jump_mv") if name in (fit.profiles or {})]
+    labels = {"top_depth_m": ("top depth (m)", "top_depth_lo_m", "top_depth_hi_m"),
+              "jump_mv": ("jump (mV)", "jump_lo_mv", "jump_hi_mv")}
+    figure = Figure(figsize=(4.0 * max(len(names), 1), 3.2), layout="constrained")
+    if not names:
+        ax = figure.subplots()
+        ax.text(0.5, 0.5, "no profile-likelihood curves for this segment", ha="center",
+                va="center", transform=ax.transAxes)
+        ax.set_axis_off()
+        return figure
+    axes = np.atleast_1d(figure.subplots(1, len(names)))
+    row = fit.sources[0] if fit.sources else {}
+    for ax, name in zip(axes, names):
+        values, dchi2 = (np.asarray(v, dtype=float) for v in fit.profiles[name])
+        order = np.argsort(values)
+        ax.plot(values[order], dchi2[order], "o-", ms=3, color="tab:blue")
+        ax.axhline(1.0, color="tab:red", ls="--", lw=1.0, label="Δχ²/s² = 1 (16–84 %)")
+        label, lo_key, hi_key = labels[name]
+        for key in (lo_key, hi_key):
+            if key in row and np.isfinite(row[key]):
+                ax.axvline(row[key], color="0.5", lw=0.8, ls=":")
+        ax.set_xlabel(label)
+        ax.set_ylabel("Δχ²/s²")
+        ax.set_ylim(0.0, max(4.0, float(np.nanmax(dchi2)) * 1.05 if dchi2.size else 4.0))
+        ax.legend(fontsize=8)
+    figure.suptitle(f"Segment {fit.segment.segment_id}: profile likelihood", fontsize=10)
+    return figure
