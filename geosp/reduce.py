@@ -19,9 +19,16 @@ Decomposition of the result (all in mV, see ``geosp.models.Stations``)::
 * Total-field surveys: ``sp_raw_mv`` is the file value (the mean over
   reoccupations of a repeated station), ``drift_mv`` is 0 and ``tie_mv`` is
   the base-tie correction interpolated in time plus, when a reference
-  station is named, the constant that brings it to 0 mV.
+  station is named, the constant that brings it to 0 mV (no reference
+  named: values stay relative to the survey's own base).
 * ``terrain_mv`` is ``b * (elevation - median elevation)`` where the terrain
   correction applies, else 0.
+
+Base ties: every station id that occurs more than once with times is a base
+or tie station; the changes of its value since its first occupation are
+interpolated linearly in time and subtracted from every reading inside its
+time span (averaged where spans overlap; no tie outside every span). Repeats
+then collapse to one station (first position, mean values).
 
 References
 ----------
@@ -83,7 +90,9 @@ def reduce_survey(
     survey : geosp.models.Survey
         Stations in the working CRS (repeated ``station_id`` = reoccupations
         of a base or tie station), optional gradient readings and electrode
-        checks, faults, optional DEM and reference station.
+        checks, faults, optional DEM and reference station (for gradient
+        readings the default is the first station read, the from-station of
+        the first reading in file order).
     drift : bool, optional
         Correct gradient readings for the electrode-pair offset δ(t),
         interpolated linearly in time between the electrode checks of each
@@ -140,7 +149,21 @@ def reduce_survey(
     geosp.models.Reduction
         Reduced stations (one per station id; ``sp_mv`` in mV relative to the
         reference), QC tables, terrain and network summaries, profiles per
-        line and the warnings issued.
+        line and the warnings issued. ``qc`` holds DataFrames: ``legs`` (one
+        row per reading: offset, correction, residual, standardized residual
+        before and after down-weighting, redundancy, flag), ``loops`` (one
+        row per independent loop: misclosure and its sigma in mV), ``lines``,
+        ``days`` (electrode checks and drift per day), ``checks``,
+        ``integration`` (readings from the reference and the 1-sigma of the
+        plain integration, sqrt(n) * reading_sigma_mv) and, for total-field
+        surveys, ``ties``. ``network`` holds ``chi2``, ``dof``, ``p_value``
+        (after down-weighting blunders), ``chi2_initial``, ``mode``,
+        ``blunders`` (DataFrame), ``sigma_scale`` and more; it is empty
+        without readings. ``terrain`` holds ``applied``, ``slope_mv_per_m``,
+        ``ci_lo``, ``ci_hi`` (95 %), ``n_used``, ``n_near_faults``,
+        ``reference_elevation_m``. ``profiles`` maps line id to arrays
+        ``station_id``, ``distance_m``, ``raw_mv``, ``reduced_mv``,
+        ``sigma_mv``, ``flag``.
 
     Raises
     ------
@@ -177,7 +200,7 @@ def reduce_survey(
     qc = {}
     network = {}
     if gradient:
-        stations = _collapse_stations(survey.stations, notes, tie=False)
+        stations = _collapse_stations(survey.stations, notes)
         st, info = _reduce_gradient(
             stations, readings, survey.electrode_checks, survey.reference_station, notes,
             drift=drift, mode=mode, reading_sigma=reading_sigma_mv, blunder_sigma=blunder_sigma,
@@ -241,7 +264,7 @@ def _check_options(mode, reading_sigma, station_sigma, blunder_sigma, terrain, c
 
 # --------------------------------------------------------------------------- stations
 
-def _collapse_stations(stations, notes, *, tie):
+def _collapse_stations(stations, notes):
     """One station per id (first occurrence), warning when repeats are far apart."""
     ids = stations.station_id
     _, first, inverse, counts = np.unique(ids, return_index=True, return_inverse=True,
@@ -301,6 +324,7 @@ def _tie_total_field(stations, reference, notes):
         if len(outside):
             notes.add(f"stations: {len(outside)} stations were read outside every base-tie "
                       "time span and are not tied.")
+    if np.any(counts > 1):
         _warn_spread(stations, inverse, counts, notes)
     keep = np.sort(first)
     group = inverse[keep]
@@ -572,12 +596,13 @@ def _reduce_gradient(stations, readings, checks, reference, notes, *, drift, mod
         "reference": reference, "mode": chosen, "covariance": res["covariance"],
         "reading_sigma_mv": float(reading_sigma), "blunder_threshold": run["threshold"],
         "blunders": blunders.reset_index(drop=True),
-        "raw_sigma_mv": dict(zip(stations.station_id[used],
-                                 np.sqrt(n_steps) * float(reading_sigma))),
     }
     if len(modes) == 2:
         network["chi2_by_mode"] = {md: runs[md]["first"]["chi2"] for md in modes}
-    qc = {"legs": legs, "loops": loops, "days": days, "checks": _check_table(checks)}
+    integration = pd.DataFrame({"station_id": stations.station_id[used], "n_readings": n_steps,
+                                "raw_sigma_mv": np.sqrt(n_steps) * float(reading_sigma)})
+    qc = {"legs": legs, "loops": loops, "days": days, "checks": _check_table(checks),
+          "integration": integration}
     lines = _lines_from_readings(line, s_from, s_to)
     return st, {"network": network, "qc": qc, "lines": lines}
 

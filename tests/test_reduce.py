@@ -508,3 +508,20 @@ def test_figures_are_labelled_matplotlib_figures():
     east = np.arange(10) * 20.0
     tf = reduce_quiet(total_field_survey(true_potential(east, 0 * east), east, 0 * east))
     assert isinstance(misclosure_figure(tf), Figure) and isinstance(drift_figure(tf), Figure)
+
+
+def test_station_without_readings_is_flagged_not_given_a_value():
+    survey, _ = grid_survey(offsets=False)
+    st = survey.stations
+    extra = Stations(station_id=np.r_[st.station_id, "LONE"], easting=np.r_[st.easting, 5000.0],
+                     northing=np.r_[st.northing, 0.0], upward=np.r_[st.upward, np.nan],
+                     sp_mv=np.r_[st.sp_mv, np.nan], crs=st.crs)
+    survey = Survey(stations=extra, faults=(), crs=st.crs, readings=survey.readings)
+    with pytest.warns(UserWarning, match="1 stations have no gradient reading"):
+        red = reduce_survey(survey, drift=False)
+    assert red.stations.flag[-1] == "no reading" and red.stations.weight[-1] == 0.0
+    assert np.isnan(red.stations.sp_mv[-1])
+    # The plain integration's sigma grows as sqrt(n) * sigma_r (physics.md §4, integration).
+    integ = red.qc["integration"].set_index("station_id")
+    assert integ.loc["S00-024", "n_readings"] == 24
+    npt.assert_allclose(integ.loc["S00-024", "raw_sigma_mv"], np.sqrt(24.0))
