@@ -513,7 +513,7 @@ def test_figures_are_labelled_matplotlib_figures():
 def test_station_without_readings_is_flagged_not_given_a_value():
     survey, _ = grid_survey(offsets=False)
     st = survey.stations
-    extra = Stations(station_id=np.r_[st.station_id, "LONE"], easting=np.r_[st.easting, 5000.0],
+    extra = Stations(station_id=np.append(st.station_id, "LONE"), easting=np.r_[st.easting, 5000.0],
                      northing=np.r_[st.northing, 0.0], upward=np.r_[st.upward, np.nan],
                      sp_mv=np.r_[st.sp_mv, np.nan], crs=st.crs)
     survey = Survey(stations=extra, faults=(), crs=st.crs, readings=survey.readings)
