@@ -202,7 +202,7 @@ def _line_spacing(x, y, line):
     across the line (within one station spacing along the line and more than
     half a station spacing across) gives one across-line distance; the
     median is the line spacing. For scattered stations (no dominant
-    direction) this tends to the station spacing.
+    direction) it is the mean spacing sqrt(hull area / n).
     """
     n = len(x)
     if n < 3:
@@ -230,7 +230,13 @@ def _line_spacing(x, y, line):
             return float(np.median(found))
     angle, strength = _line_direction(x, y)
     if strength < 0.3:
-        return d_station
+        # Scattered stations: the mean spacing sqrt(area / n) stands in for
+        # the line spacing.
+        try:
+            area = ConvexHull(xy - xy.mean(axis=0)).volume
+        except QhullError:
+            return d_station
+        return max(d_station, math.sqrt(area / n))
     along = np.array([math.cos(angle), math.sin(angle)])
     across = np.array([-along[1], along[0]])
     found = np.full(len(idx), np.nan)
@@ -287,9 +293,10 @@ def line_spacing(stations):
         station to the nearest station on another line. Without, the median
         across-line distance to the nearest station on a neighbouring line,
         the lines' direction being the dominant direction of the
-        nearest-neighbour vectors (this assumes roughly parallel lines; for
-        scattered stations it tends to the station spacing). NaN for fewer
-        than three stations.
+        nearest-neighbour vectors (this assumes roughly parallel lines). NaN for fewer
+        than three stations. Scattered stations (no dominant direction of
+        the nearest-neighbour vectors) give the mean spacing
+        sqrt(convex-hull area / n) instead.
     """
     x, y, line = _valid_xy(stations)
     return _line_spacing(x, y, line)
