@@ -8,6 +8,7 @@ results whatever runs it.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import logging
 import multiprocessing
@@ -123,10 +124,34 @@ def map_segments(func, items, *, workers=None, scheduler=None, progress=None):
     return _map_processes(func, items, min(n, total), progress)
 
 
+_THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
+                     "NUMBA_NUM_THREADS")
+
+
+@contextlib.contextmanager
+def _single_threaded_children():
+    """
+    Spawned workers start with one BLAS/OpenMP thread each (they read these
+    variables at start-up), so N workers do not oversubscribe N cores.
+    """
+    saved = {name: os.environ.get(name) for name in _THREAD_VARIABLES}
+    for name in _THREAD_VARIABLES:
+        os.environ[name] = "1"
+    try:
+        yield
+    finally:
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
+
+
 def _map_processes(func, items, n, progress):
     results = [None] * len(items)
     context = multiprocessing.get_context("spawn")
-    with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
+    with _single_threaded_children(), \
+            ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
         futures = {pool.submit(func, item): i for i, item in enumerate(items)}
         for done, future in enumerate(as_completed(futures), start=1):
             results[futures[future]] = future.result()
