@@ -838,7 +838,7 @@ def _grid_stations(stations, method, cell_size_m, tension, damping, block_size_m
         "block_size_m": block,
         "tension": best_t,
         "damping": best_d,
-        "tension_length_m": (spacing_line / _tension_wavenumber(best_t)) if best_t > 0 else float("inf"),
+        "tension_length_m": (spacing_line / _tension_wavenumber(best_t)) if best_t > 0 else None,
         "line_spacing_m": spacing_line,
         "station_spacing_m": spacing_station,
         "mask_distance_m": mask_distance,
