@@ -884,8 +884,8 @@ def _mcmc_interval(problem, p, s2, cov_t, j, rng, steps, walkers):
     span = model.upper - model.lower
     start = p + np.minimum(sd, 0.05 * span) * rng.standard_normal((walkers, k))
     start = np.clip(start, model.lower + 1e-6 * span, model.upper - 1e-6 * span)
-    sampler = emcee.EnsembleSampler(walkers, k, log_prob, seed=None)
-    sampler._random = np.random.mtrand.RandomState(int(rng.integers(2 ** 31)))
+    sampler = emcee.EnsembleSampler(walkers, k, log_prob)
+    sampler.random_state = np.random.RandomState(int(rng.integers(2 ** 31))).get_state()
     sampler.run_mcmc(start, int(steps), progress=False)
     chain = sampler.get_chain(discard=int(steps) // 2, thin=5, flat=True)
     tops = np.exp(chain[:, 4 * j + 2])
