@@ -298,3 +298,78 @@ class FitResult:
     residual_mv: np.ndarray  # (n_stations,)
     regional: dict  # coefficients of the joint regional
     sources: tuple  # of dict: final rows with jump re-solved jointly
+
+
+@dataclass(frozen=True)
+class FlowRegion:
+    """
+    One region of a primary-flow model with its properties (SI units).
+
+    ``shape`` is a polygon of (x, z) vertices in m with z positive down
+    (sections), or a box ``(x0, x1, y0, y1, z0, z1)`` in m (3-D). C_P and
+    C_T keep their laboratory sign: C_P = (ΔV/ΔP) and C_T = (ΔV/ΔT) at
+    zero current, so the current density is j = −σ∇V + σC_P∇P + σC_T∇T.
+    """
+
+    name: str
+    shape: np.ndarray | None  # None for the background
+    sigma_s_m: float
+    c_p_v_pa: float = 0.0
+    c_t_v_k: float = 0.0
+    mobility_m2_pa_s: float = 1e-9  # k/η, permeability over viscosity
+    thermal_conductivity_w_m_k: float = 2.5
+
+
+@dataclass(frozen=True)
+class FlowSource:
+    """
+    A fluid (``equation="pressure"``, strength in m³/s) or heat
+    (``equation="heat"``, strength in W) source; per metre along strike in
+    sections. ``kind`` is "point" ((2,) or (3,) position), "line" ((2, d)
+    end points) or "region" (polygon or box as in :class:`FlowRegion`).
+    """
+
+    name: str
+    equation: str
+    kind: str
+    geometry: np.ndarray
+    strength: float
+
+
+@dataclass(frozen=True)
+class FlowFixed:
+    """Pressure (Pa) or temperature (K above the surface) held fixed in a region."""
+
+    name: str
+    equation: str  # "pressure" or "heat"
+    shape: np.ndarray
+    value: float
+
+
+@dataclass(frozen=True)
+class FlowModel:
+    """
+    A primary-flow model: mesh, regions, sources, fixed values and the
+    surface profile on which SP is reported. Built by
+    ``geosp.io.flowmodel.read_flow_model``; solved by
+    ``geosp.flow.run_flow_model``.
+    """
+
+    ndim: int  # 2 (x, z section) or 3 (x, y, z)
+    core_x_m: tuple  # (x0, x1) of the uniform core
+    depth_m: float  # depth of the core below the surface
+    cell_m: float  # core cell size
+    background: FlowRegion
+    core_y_m: tuple | None = None  # (y0, y1), 3-D only
+    padding_factor: float = 1.3
+    padding_m: float | None = None  # distance of the far boundaries beyond the core
+    regions: tuple = ()  # of FlowRegion, later ones override earlier ones
+    sources: tuple = ()  # of FlowSource
+    fixed: tuple = ()  # of FlowFixed
+    profile_x_m: tuple | None = None  # (x0, x1); default the core
+    profile_spacing_m: float | None = None  # default the cell size
+    profile_y_m: float = 0.0  # 3-D: the profile runs along x at this y
+    heat_advection: bool = False  # advect heat with the Darcy flux of the pressure solution
+    fluid_heat_capacity_j_m3_k: float = 4.18e6
+    title: str = ""
+    source_path: str = ""
