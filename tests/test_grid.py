@@ -206,10 +206,10 @@ def test_grid_beats_linear_griddata_between_lines(smooth_result):
 def test_local_windows_agree_with_one_global_spline():
     # Reference: the same damped spline solved as one dense system over all
     # reduced points (max_points above their number). Blending local windows
-    # with a two-line-spacing data margin should change interior nodes by well
-    # under 0.2 % of the 80 mV range (0.15 mV), and keep the RMS error against
-    # the analytic field within 2.5x of the global solve's (both ~0.02-0.05 mV;
-    # the corners, which are extrapolated, differ most).
+    # with a two-line-spacing data margin should change interior nodes (150 m
+    # from the edges) by under 0.2 % of the 80 mV range (0.15 mV) and keep their
+    # RMS error against the analytic field within 1.5x of the global solve's;
+    # the extrapolated corners differ most (about 0.5 mV, bounded at 1 mV).
     stations = line_survey()
     options = dict(tension=0.5, damping=1e-3, cv="none")
     global_ = grid_stations(stations, max_points=5000, **options)
@@ -220,10 +220,11 @@ def test_local_windows_agree_with_one_global_spline():
     interior = (ge > 150) & (ge < 1350) & (gn > 150) & (gn < 850)
     diff = np.abs(local.grid.values - global_.grid.values)
     assert np.nanmax(diff[interior]) < 0.15
-    truth = smooth_field(ge, gn)
-    rms_local = np.sqrt(np.nanmean((local.grid.values - truth) ** 2))
-    rms_global = np.sqrt(np.nanmean((global_.grid.values - truth) ** 2))
-    assert rms_local < 2.5 * rms_global
+    assert np.nanmax(diff) < 1.0
+    truth = smooth_field(ge, gn)[interior]
+    rms_local = np.sqrt(np.nanmean((local.grid.values[interior] - truth) ** 2))
+    rms_global = np.sqrt(np.nanmean((global_.grid.values[interior] - truth) ** 2))
+    assert rms_local < 1.5 * rms_global
 
 
 def test_line_cv_is_honest_where_random_cv_is_not():
