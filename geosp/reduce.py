@@ -150,8 +150,9 @@ def reduce_survey(
         Reduced stations (one per station id; ``sp_mv`` in mV relative to the
         reference), QC tables, terrain and network summaries, profiles per
         line and the warnings issued. ``qc`` holds DataFrames: ``legs`` (one
-        row per reading: offset, correction, residual, standardized residual
-        before and after down-weighting, redundancy, flag), ``loops`` (one
+        row per reading, largest |standardized residual| first: offset,
+        correction, residual, standardized residual before and after
+        down-weighting, redundancy, flag, ``source_row``), ``loops`` (one
         row per independent loop: misclosure and its sigma in mV), ``lines``,
         ``days`` (electrode checks and drift per day), ``checks``,
         ``integration`` (readings from the reference and the 1-sigma of the
@@ -587,6 +588,9 @@ def _reduce_gradient(stations, readings, checks, reference, notes, *, drift, mod
                 f"w = {r.std_residual:+.1f})" for r in blunders.itertuples()]
         notes.add(f"{path}: blunder legs found by loop closure and down-weighted: "
                   f"{format_rows(text)}. Re-read these legs.")
+    order = np.argsort(-np.nan_to_num(np.abs(legs["std_residual"].to_numpy()), nan=-1.0),
+                       kind="stable")
+    legs = legs.iloc[order].reset_index(drop=True)  # largest standardized residual first
     loops = _loop_table(run["first"], stations.station_id[used], line)
     network = {
         "chi2": chi2, "dof": int(dof), "p_value": p_value,

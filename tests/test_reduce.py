@@ -96,6 +96,11 @@ def reduce_quiet(survey, **options):
         return reduce_survey(survey, **options)
 
 
+def legs_in_file_order(reduction):
+    """The legs table (sorted by standardized residual) back in CSV row order."""
+    return reduction.qc["legs"].sort_values("source_row").reset_index(drop=True)
+
+
 def error_vs_truth(reduction, truth):
     st = reduction.stations
     return st.sp_mv - np.array([truth[s] for s in st.station_id])
@@ -157,7 +162,13 @@ def test_single_loop_misclosure_spread_equally():
 def test_drift_recovered_and_blunder_leg_named():
     survey, truth = grid_survey(noise=0.0, blunder=(30, 40.0), mode="fixed_lead")
     red = reduce_quiet(survey, mode="fixed_lead")
-    legs = red.qc["legs"]
+    legs = legs_in_file_order(red)
+    assert legs["source_row"].iloc[0] == 2
+    w = np.abs(red.qc["legs"]["std_residual"].to_numpy())
+    assert np.all(np.diff(w[np.isfinite(w)]) <= 0)  # the table lists the worst legs first
+    # Before down-weighting, the whole chain S01-000 .. S01-008 (rows 26-33) shares the
+    # largest |standardized residual| (legs in series cannot be told apart by closure alone).
+    assert red.qc["legs"]["source_row"].iloc[0] in range(26, 34)
     # The offset applied to each reading must be the invented delta(t): it is linear
     # within each day, so interpolating the start/end checks recovers it to round-off.
     npt.assert_allclose(legs["offset_mv"], delta_true(survey.readings.time), atol=1e-9)
@@ -185,7 +196,7 @@ def test_leapfrog_offsets_alternate_and_cancel():
     # the accumulated offset stays at 0 or delta (physics.md §4).
     survey, truth = grid_survey(noise=0.0, mode="leapfrog")
     red = reduce_quiet(survey, mode="leapfrog")
-    corr = red.qc["legs"]["correction_mv"].to_numpy()[:24]
+    corr = legs_in_file_order(red)["correction_mv"].to_numpy()[:24]
     npt.assert_allclose(corr[0::2], delta_true(survey.readings.time[:24:2]), atol=1e-9)
     npt.assert_allclose(corr[1::2], -delta_true(survey.readings.time[1:24:2]), atol=1e-9)
     err = error_vs_truth(red, truth)
@@ -259,7 +270,7 @@ def test_closure_chi2_follows_chi_square_distribution():
     assert stats.kstest(wrong, stats.chi2(4).cdf).pvalue < 1e-6
 
 
-@settings(max_examples=25, deadline=None)
+@settings(max_examples=15, deadline=None)
 @given(seed=hs.integers(0, 10_000), ref_index=hs.integers(0, 44))
 def test_reference_choice_changes_potentials_by_a_constant(seed, ref_index):
     # Property of the least-squares adjustment: fixing a different node at 0 shifts every
@@ -324,7 +335,7 @@ def test_warns_on_large_offset_drift_and_days_without_checks():
     days = red.qc["days"].set_index("day")
     assert not days.loc[np.datetime64("2026-03-03"), "corrected"]
     day2 = survey.readings.time >= DAY2
-    npt.assert_allclose(red.qc["legs"]["correction_mv"].to_numpy()[day2], 0.0)
+    npt.assert_allclose(legs_in_file_order(red)["correction_mv"].to_numpy()[day2], 0.0)
 
 
 def _with_readings(survey, **changes):
