@@ -40,6 +40,7 @@ import pandas as pd
 from scipy import linalg, special
 from scipy.spatial import ConvexHull, cKDTree
 from scipy.spatial import QhullError
+from scipy.spatial.distance import cdist
 
 from geosp.errors import InputError, OptionError
 from geosp.models import GridResult, Raster
@@ -59,6 +60,7 @@ _BLEND = 0.25  # width of the blending ramp between windows, as a fraction of th
 _CV_WINDOWS = 10  # windows used for cross-validation when there are more
 _TABLE_STEP = 2.5e-4  # kernel table step, in line spacings
 _SAMPLE = 3000  # stations sampled to estimate spacings
+_MIN_WINDOW_POINTS = 6  # fewer reduced points than this: the window is skipped
 
 
 # ---------------------------------------------------------------------------
@@ -135,8 +137,6 @@ class _KernelTable:
 
 def _distances(a, b):
     """Euclidean distance matrix between (n, 2) and (m, 2) arrays."""
-    from scipy.spatial.distance import cdist
-
     return cdist(a, b)
 
 
@@ -505,10 +505,6 @@ def _one_blas_thread():
     return threadpool_limits(limits=1, user_api="blas")
 
 
-def _min_points_window():
-    return 6
-
-
 def _fit_windows(windows, region, px, py, pv, pw, tension, damping, scale, targets):
     """
     Fit the spline in every window and blend predictions at ``targets`` (x, y).
@@ -527,7 +523,7 @@ def _fit_windows(windows, region, px, py, pv, pw, tension, damping, scale, targe
             continue
         dbox = windows.data_box(i, j, region)
         sel = np.flatnonzero(_in_box(px, py, dbox))
-        if sel.size < _min_points_window():
+        if sel.size < _MIN_WINDOW_POINTS:
             continue
         centre = ((dbox[0] + dbox[1]) / 2, (dbox[2] + dbox[3]) / 2)
         spline = _LocalSpline(kernel, centre, scale)
@@ -620,7 +616,7 @@ def _cv_scores(windows_data, tables, tensions, dampings, px, py, pv, pw, fold, k
             for f in range(k):
                 test = in_core & (fold[sel] == f)
                 train = fold[sel] != f
-                if not test.any() or np.count_nonzero(train) < _min_points_window():
+                if not test.any() or np.count_nonzero(train) < _MIN_WINDOW_POINTS:
                     continue
                 projection = _Projection(xy[train])
                 kernel_part = projection.apply(phi[np.ix_(train, train)])
