@@ -44,6 +44,10 @@ _CULTURAL_DELTA_BIC = 6.0
 #: pole pair two positions and a depth.
 _K_TEMPLATE = 3 + 1 + 2
 _K_POLE_PAIR = 3 + 1 + 5
+#: Decoys with at least this fraction of the segment's station count may fill
+#: up the decoy set when too few have as many (a footprint aligned with the
+#: survey lines catches whole lines at its edges, a rotated copy rarely does).
+_PARTIAL_FRACTION = 0.8
 #: Fraction of corridor stations two detected segments may share before the
 #: lower score is treated as the same anomaly.
 _SHARED_FRACTION = 0.5
@@ -179,7 +183,7 @@ def _check_options(depths, ratios, false_alarm_rate, n_decoys, min_score, cultur
 
 
 class _SurveyArrays:
-    """Valid stations as plain arrays, with a KD-tree for footprint queries."""
+    """Valid stations as plain arrays, with a cell index for footprint queries."""
 
     def __init__(self, stations, valid_index):
         self.index = valid_index
@@ -189,8 +193,6 @@ class _SurveyArrays:
         self.weight = np.asarray(stations.weight, dtype=float)[valid_index]
         sigma = np.asarray(stations.sigma_mv, dtype=float)[valid_index]
         self.read_var = np.where(np.isfinite(sigma) & (sigma > 0), sigma ** 2, np.nan)
-        self.tree = cKDTree(np.column_stack([self.easting, self.northing])) \
-            if len(valid_index) else None
         self.spacing = _station_spacing(self.easting, self.northing)
         self.grid = _CellIndex(self.easting, self.northing)
 
@@ -445,32 +447,35 @@ def _decoy_footprints(segment, n_real, data, corridor, n_decoys, fault_tree, rng
     Place up to ``n_decoys`` copies of the segment's corridor at random
     positions (centred near random stations) and rotations, with the trace at
     least ``corridor`` from every mapped fault and at least ``n_real``
-    stations inside. While fewer than _MIN_DECOYS are found, the station
-    count is relaxed to 90 % of n_real (a rotated copy of a footprint that
-    happens to catch whole lines rarely catches as many), and then the fault
-    distance to corridor/2 (never further: decoys over a real anomaly would
-    inflate the threshold).
+    stations inside.
+
+    When fewer than ``n_decoys`` such copies turn up in a few rounds of
+    candidates, copies with at least 80 % of ``n_real`` stations fill the
+    rest (a rotated copy of a footprint that happens to catch whole lines
+    rarely catches as many). When fewer than _MIN_DECOYS are found at all,
+    the fault distance is relaxed to corridor/2 (never further: decoys over
+    a real anomaly would inflate the threshold).
 
     Returns (list of (along, across, valid-array index) per decoy,
-    (fault-distance factor, station fraction) used last).
+    (fault-distance factor, share of decoys with fewer stations)).
     """
     length = segment.length_m
-    if data.tree is None or n_decoys == 0:
-        return [], 0.0
+    if data.easting.size == 0 or n_decoys == 0:
+        return [], (1.0, 0.0)
     jitter = data.spacing if np.isfinite(data.spacing) else 0.0
-    decoys = []
-    for relax, fraction in ((1.0, 1.0), (1.0, 0.9), (0.5, 0.9)):
-        n_need = int(math.ceil(fraction * n_real))
-        tries = 0
-        while len(decoys) < n_decoys and tries < 20:
-            tries += 1
+    n_part = int(math.ceil(_PARTIAL_FRACTION * n_real))
+    full, part = [], []
+    for relax in (1.0, 0.5):
+        for _ in range(6):
+            if len(full) >= n_decoys:
+                break
             n_cand = 2 * n_decoys
             pick = rng.integers(0, data.easting.size, n_cand)
             centre = np.column_stack([data.easting[pick], data.northing[pick]])
             centre += rng.uniform(-jitter, jitter, size=(n_cand, 2))
             angle = rng.uniform(0.0, 2.0 * math.pi, n_cand)
             unit = np.column_stack([np.sin(angle), np.cos(angle)])  # along strike
-            if fault_tree is not None and relax > 0:
+            if fault_tree is not None:
                 f = np.linspace(-0.5, 0.5, 9)
                 pts = centre[:, None, :] + f[None, :, None] * length * unit[:, None, :]
                 dist, _ = fault_tree.query(pts.reshape(-1, 2))
@@ -480,7 +485,7 @@ def _decoy_footprints(segment, n_real, data, corridor, n_decoys, fault_tree, rng
             for k in np.flatnonzero(far):
                 box = np.abs(unit[k]) * (length / 2.0 + corridor) + np.abs(unit[k][::-1]) * corridor
                 near = data.grid.query(centre[k] - box, centre[k] + box)
-                if near.size < n_need:
+                if near.size < n_part:
                     continue
                 de = data.easting[near] - centre[k, 0]
                 dn = data.northing[near] - centre[k, 1]
@@ -488,17 +493,71 @@ def _decoy_footprints(segment, n_real, data, corridor, n_decoys, fault_tree, rng
                 across = de * unit[k, 1] - dn * unit[k, 0]
                 inside = (np.abs(across) <= corridor) & (along >= -corridor) \
                     & (along <= length + corridor)
-                if np.count_nonzero(inside) < n_need:
-                    continue
-                decoys.append((along[inside], across[inside], near[inside]))
-                if len(decoys) >= n_decoys:
+                count = np.count_nonzero(inside)
+                if count >= n_part:
+                    (full if count >= n_real else part).append(
+                        (along[inside], across[inside], near[inside]))
+                if len(full) >= n_decoys:
                     break
-        if len(decoys) >= n_decoys or len(decoys) >= _MIN_DECOYS:
-            return decoys, (relax, fraction)
-    return decoys, (relax, fraction)
+        if len(full) + len(part) >= _MIN_DECOYS:
+            break
+    decoys = full[:n_decoys] + part[:max(n_decoys - len(full), 0)]
+    short = (len(decoys) - min(len(full), n_decoys)) / max(len(decoys), 1)
+    return decoys, (relax, short)
 
 
 # --------------------------------------------------------------------------- one segment
+
+
+class _SegmentSetup:
+    """
+    Everything about one segment that does not depend on the data values:
+    local coordinates and templates of its stations and of its decoys.
+    """
+
+    def __init__(self, segment, pos, data, corridor, depths, ratios, n_decoys, fault_tree, rng):
+        self.segment = segment
+        self.pos = pos
+        self.n = int(pos.size)
+        self.templates = _templates(segment, depths, ratios)
+        length = segment.length_m
+        self.along, self.across = segment.to_local(data.easting[pos], data.northing[pos])
+        self.columns = _template_matrix(self.along, self.across, length, self.templates)
+        decoys, self.relax = _decoy_footprints(segment, self.n, data, corridor, n_decoys,
+                                               fault_tree, rng)
+        self.n_decoys = len(decoys)
+        if self.n_decoys >= _MIN_DECOYS:
+            self.d_along = np.concatenate([d[0] for d in decoys])
+            self.d_across = np.concatenate([d[1] for d in decoys])
+            self.d_pos = np.concatenate([d[2] for d in decoys])
+            self.starts = np.cumsum([0] + [d[0].size for d in decoys[:-1]])
+            self.d_columns = _template_matrix(self.d_along, self.d_across, length,
+                                              self.templates)
+
+    def score(self, values, weight, read_var):
+        """
+        Scores of the segment and of its decoys for station arrays
+        ``values`` (mV), ``weight`` and ``read_var`` (mV², NaN unknown), all
+        indexed like the valid stations. Decoy scores are None when there
+        are too few decoys.
+        """
+        pos = self.pos
+        real = _score_groups(self.columns, self.along, self.across, values[pos], weight[pos],
+                             read_var[pos], np.array([0]))
+        decoy_scores = None
+        if self.n_decoys >= _MIN_DECOYS:
+            d = self.d_pos
+            decoy_scores = _score_groups(self.d_columns, self.d_along, self.d_across, values[d],
+                                         weight[d], read_var[d], self.starts)["score"]
+        return real, decoy_scores
+
+
+def _threshold(decoy_scores, false_alarm_rate, min_score):
+    """Threshold and the decoys' (1 − rate) quantile (NaN without decoys)."""
+    if decoy_scores is None:
+        return float(min_score), np.nan
+    quantile = float(np.quantile(decoy_scores, 1.0 - false_alarm_rate))
+    return max(float(min_score), quantile), quantile
 
 
 def _detect_segment(segment, pos, data, corridor, depths, ratios, false_alarm_rate,
@@ -511,42 +570,27 @@ def _detect_segment(segment, pos, data, corridor, depths, ratios, false_alarm_ra
             detected=False, threshold=np.nan, noise_mv=np.nan, best_template={},
             note=f"too few stations ({n}; at least {_MIN_STATIONS} needed)",
         )
-    along, across = segment.to_local(data.easting[pos], data.northing[pos])
-    templates = _templates(segment, depths, ratios)
-    length = segment.length_m
-    columns = _template_matrix(along, across, length, templates)
-    real = _score_groups(columns, along, across, data.data[pos], data.weight[pos],
-                         data.read_var[pos], np.array([0]))
+    setup = _SegmentSetup(segment, pos, data, corridor, depths, ratios, n_decoys, fault_tree, rng)
+    real, decoy_scores = setup.score(data.data, data.weight, data.read_var)
     score = float(real["score"][0])
     best = int(real["best"][0])
-    decoys, relax = _decoy_footprints(segment, n, data, corridor, n_decoys, fault_tree, rng)
-    rate_text = f"{100 * false_alarm_rate:g} % false-alarm"
-    if len(decoys) >= _MIN_DECOYS:
-        d_along = np.concatenate([d[0] for d in decoys])
-        d_across = np.concatenate([d[1] for d in decoys])
-        d_pos = np.concatenate([d[2] for d in decoys])
-        starts = np.cumsum([0] + [d[0].size for d in decoys[:-1]])
-        d_cols = _template_matrix(d_along, d_across, length, templates)
-        dec = _score_groups(d_cols, d_along, d_across, data.data[d_pos], data.weight[d_pos],
-                            data.read_var[d_pos], starts)
-        quantile = float(np.quantile(dec["score"], 1.0 - false_alarm_rate))
-        threshold = max(min_score, quantile)
-        how = f"decoys, {rate_text}" if quantile >= min_score else \
+    threshold, quantile = _threshold(decoy_scores, false_alarm_rate, min_score)
+    if decoy_scores is not None:
+        how = f"decoys, {100 * false_alarm_rate:g} % false-alarm" if quantile >= min_score else \
             f"minimum score; decoys' {100 * (1 - false_alarm_rate):g}th percentile {quantile:.1f}"
-        if len(decoys) < n_decoys:
-            how += f", only {len(decoys)} decoys"
-        if relax[1] < 1.0:
-            how += f", some decoys with ≥ {100 * relax[1]:g} % of its {n} stations"
-        if relax[0] < 1.0:
+        if setup.n_decoys < n_decoys:
+            how += f", only {setup.n_decoys} decoys"
+        if setup.relax[1] > 0:
+            how += f", {100 * setup.relax[1]:.0f} % of decoys with 80-100 % of its {n} stations"
+        if setup.relax[0] < 1.0:
             how += ", some decoys near mapped faults"
     else:
-        threshold = min_score
-        how = (f"minimum score, not calibrated: only {len(decoys)} decoys with {n}+ stations "
+        how = (f"minimum score, not calibrated: only {setup.n_decoys} decoys with {n}+ stations "
                "fit in the survey away from mapped faults")
     detected = bool(score > threshold)
     relation = ">" if detected else "≤"
     note = f"score {score:.1f} {relation} threshold {threshold:.1f} ({how})"
-    z_t, z_b, dip = templates[best]
+    z_t, z_b, dip = setup.templates[best]
     best_template = {
         "depth_top_m": z_t, "depth_bottom_m": z_b, "dip_deg": dip,
         "jump_mv": float(real["amplitude"][0]),
@@ -555,14 +599,14 @@ def _detect_segment(segment, pos, data, corridor, depths, ratios, false_alarm_ra
     polarity = 1 if real["amplitude"][0] >= 0 else -1
     cultural = False
     if detected:
-        gain = _pole_pair_gain(segment, along, across, data.data[pos], real["weights"],
-                               float(real["chi2"][0]), cultural_max_depth_m, data.spacing)
-        if gain is not None:
-            best_template["pole_pair_delta_bic"] = gain
-            if gain > _CULTURAL_DELTA_BIC:
-                cultural = True
-                note += (f"; a shallow pole pair (≤ {cultural_max_depth_m:g} m) fits better"
-                         f" (ΔBIC {gain:.0f}): likely cultural or near-surface")
+        gain = _pole_pair_gain(segment, setup.along, setup.across, data.data[pos],
+                               real["weights"], float(real["chi2"][0]), cultural_max_depth_m,
+                               data.spacing)
+        best_template["pole_pair_delta_bic"] = gain
+        if gain > _CULTURAL_DELTA_BIC:
+            cultural = True
+            note += (f"; a shallow pole pair (≤ {cultural_max_depth_m:g} m) fits better"
+                     f" (ΔBIC {gain:.0f}): likely cultural or near-surface")
     return Detection(
         segment=segment, station_index=index, n_stations=n, score=score, polarity=polarity,
         detected=detected, threshold=float(threshold), noise_mv=float(real["noise"][0]),

@@ -242,21 +242,40 @@ def test_bad_option_raises_option_error():
 
 @pytest.mark.slow
 def test_false_alarm_rate_matches_decoy_calibration():
-    # Source-free segment with fresh white noise in each of 300
+    # Source-free segment with fresh white noise in each of 400
     # realizations (min_score = 0, so the decoys alone set the threshold).
     # With exchangeable scores the chance to beat the decoys' 99th
     # percentile is about 1 %; the count must be consistent with
-    # Binomial(300, 0.01): two-sided binomial test p > 0.001
-    # (scipy.stats.binomtest; at 300 trials this accepts 0 to 9 detections).
-    east, north = _line_survey(2000.0, 20.0, 100.0)
+    # Binomial(400, 0.01): two-sided binomial test p > 0.001
+    # (scipy.stats.binomtest; at 400 trials this accepts 0 to 11 detections).
+    # The survey geometry, templates and decoy placement are built once and
+    # reused; only the noise changes. The first realization goes through the
+    # public detect_dipoles with the same seed to tie the two paths together.
+    east, north = _line_survey(3000.0, 20.0, 100.0)
     segments = make_segments((Fault("Q", np.array([[0.0, -300.0], [0.0, 300.0]])),),
                              station_spacing_m=20.0)
+    options = dict(template_top_depths_m=[25, 50, 100], min_score=0.0, n_decoys=200, seed=7)
     rng = np.random.default_rng(99)
-    n_runs = 300
+    first = rng.normal(0.0, 5.0, east.size)
+    (public,) = detect_dipoles(_stations(east, north, first), segments, **options)
+
+    stations = _stations(east, north, first)
+    data = detect._SurveyArrays(stations, np.arange(east.size))
+    depths = np.asarray(options["template_top_depths_m"], dtype=float)
+    corridor = detect._auto_corridor(data, depths)
+    (pos,) = detect._owned_stations(data.easting, data.northing, segments, corridor)
+    setup = detect._SegmentSetup(
+        segments[0], pos, data, corridor, depths, np.array([2.0, 4.0]), options["n_decoys"],
+        detect._fault_tree(segments, corridor), np.random.default_rng([options["seed"], 0]))
+    assert setup.n_decoys >= 150
+    n_runs = 400
     hits = 0
     for run in range(n_runs):
-        stations = _stations(east, north, rng.normal(0.0, 5.0, east.size))
-        (d,) = detect_dipoles(stations, segments, template_top_depths_m=[25, 50, 100],
-                              min_score=0.0, n_decoys=200, seed=run)
-        hits += d.detected
+        values = first if run == 0 else rng.normal(0.0, 5.0, east.size)
+        real, decoys = setup.score(values, data.weight, data.read_var)
+        threshold, _ = detect._threshold(decoys, 0.01, 0.0)
+        if run == 0:
+            npt.assert_allclose([real["score"][0], threshold], [public.score, public.threshold],
+                                rtol=1e-12)
+        hits += bool(real["score"][0] > threshold)
     assert stats.binomtest(hits, n_runs, 0.01).pvalue > 1e-3, hits
