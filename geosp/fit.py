@@ -15,8 +15,11 @@ strike + 90°.
 
 from __future__ import annotations
 
+import difflib
+import inspect
 import logging
 import time
+import warnings
 from dataclasses import replace
 from functools import partial
 
@@ -37,6 +40,7 @@ _MODELS = ("fault_patch", "two_patches", "pole_pair")
 _UNCERTAINTY = ("jacobian", "profile", "mcmc")
 _HUBER_C = 1.345  # Huber (1964) tuning constant: 95 % efficiency for Gaussian noise
 _REGIONAL_SCALE = 1000.0  # regional slopes are solved per km for conditioning
+_MIN_STATIONS = 12  # one patch has 9 parameters; keep a few degrees of freedom
 _POLE_MAX_DEPTH = 50.0  # m, "shallow" pole pair (physics.md §3, common practice)
 _POLE_MAX_SEPARATION = 200.0  # m
 _SOURCE_FIELDS = (
@@ -554,7 +558,7 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
       [Kass1995]_, [Goodman2010]_
     """
     start_time = time.perf_counter()
-    models = tuple(models)
+    models = (models,) if isinstance(models, str) else tuple(models)
     _check_options(models, n_starts, n_local, uncertainty, dip_range_deg, huber_passes)
     segment = detection.segment
     index = np.asarray(detection.station_index, dtype=int)
@@ -568,7 +572,7 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
     s_all, t_all = segment.to_local(stations.easting[index], stations.northing[index])
     s_all, t_all = np.asarray(s_all, float), np.asarray(t_all, float)
     n = int(used.sum())
-    if n < 12:
+    if n < _MIN_STATIONS:
         raise InputError(
             f"segment {segment.segment_id}", f"only {n} usable stations in the fit corridor.",
             "Widen the corridor ([detect] corridor_m) or skip this segment.",
@@ -666,6 +670,7 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
         }
         if model.name == "pole_pair":
             sources.append(_pole_row(segment, model, p, x, cov, names, stats, flags))
+            flags.append("likely cultural")
         else:
             elevation = np.asarray(stations.upward, dtype=float)[index][used]
             sources += _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals,
@@ -1066,7 +1071,25 @@ def fit_segments(stations, detections, *, workers=None, scheduler=None, progress
     fit is kept in ``fits`` and its sources get no row); the joint linear
     solve then avoids double-counting one anomaly.
     """
+    known = set(inspect.signature(fit_segment).parameters) - {"stations", "detection"}
+    unknown = sorted(set(fit_options) - known)
+    if unknown:
+        hints = [difflib.get_close_matches(name, known, n=1) for name in unknown]
+        hint = "; ".join(f"{u} (did you mean {h[0]}?)" if h else u for u, h in zip(unknown, hints))
+        raise OptionError("[fit]", f"unknown option(s): {hint}.",
+                          f"Known options: {', '.join(sorted(known))}.")
     detections = [det for det in detections if det.detected]
+    sp = np.asarray(stations.sp_mv, dtype=float)
+    usable = np.isfinite(sp) & (np.asarray(stations.weight, dtype=float) > 0)
+    kept = []
+    for det in detections:
+        n_usable = int(usable[np.asarray(det.station_index, dtype=int)].sum())
+        if n_usable < _MIN_STATIONS:
+            warnings.warn(f"segment {det.segment.segment_id}: only {n_usable} usable stations; "
+                          "not fitted.", stacklevel=2)
+        else:
+            kept.append(det)
+    detections = kept
     items = []
     for det in detections:
         index = np.asarray(det.station_index, dtype=int)

@@ -345,3 +345,53 @@ def test_terrain_flag_when_relief_exceeds_fifth_of_top_depth():
     hilly = stations.replace(upward=40.0 * np.exp(-(t / 300.0) ** 2))  # 40 m > 0.2 × 150 m
     fit = fit_segment(hilly, detection, models=("fault_patch",), uncertainty="jacobian", **FAST)
     assert "terrain" in fit.sources[0]["flags"].split("; ")
+
+
+def test_fit_segments_rejects_unknown_option_and_skips_sparse_segment():
+    stations, detections = _two_segment_survey()
+    with pytest.raises(OptionError, match="n_start .did you mean n_starts"):
+        fit_segments(stations, detections, workers=1, n_start=16)
+    sparse = replace(detections[1], station_index=detections[1].station_index[:5])
+    with pytest.warns(UserWarning, match="only 5 usable stations"):
+        result = fit_segments(stations, [detections[0], sparse], workers=1,
+                              models=("fault_patch",), uncertainty="jacobian", **FAST)
+    assert len(result.fits) == 1
+
+
+def test_figures_and_parameter_table():
+    from matplotlib.figure import Figure
+
+    from geosp.figures.fit import likelihood_figure, parameter_table, profiles_figure
+
+    truth = dict(TRUTH, dip=120.0)  # flipped dip: the jump is reported negated
+    segment = make_segment(dip_known=False, dip_deg=np.nan)
+    stations, detection = make_survey(segment, truth=truth, n_lines=5, spacing_m=50.0)
+    fit = fit_segment(stations, detection, models=("fault_patch",), **FAST)
+    row = fit.sources[0]
+    table = parameter_table(fit).set_index("parameter")
+    top = table.loc["top depth (m)"]
+    assert top["value"] == row["top_depth_m"] and top["p16"] == row["top_depth_lo_m"]
+    jump = table.loc["jump (mV)"]
+    assert jump["p16"] < jump["value"] < jump["p84"] and jump["value"] < 0
+    dip = table.loc["dip (°)"]  # linearised ±1σ where no interval is computed
+    assert dip["interval"] == "±1σ" and dip["p84"] - dip["p16"] == pytest.approx(2 * dip["sd"])
+
+    figure = profiles_figure(fit, stations)
+    assert isinstance(figure, Figure) and len(figure.axes) == 4
+    ax = figure.axes[0]
+    lines = {line.get_label(): line for line in ax.get_lines()}
+    obs_x = ax.containers[0].lines[0].get_xdata()
+    obs_y = ax.containers[0].lines[0].get_ydata()
+    npt.assert_allclose(lines["residual"].get_ydata(), obs_y - lines["model"].get_ydata())
+    npt.assert_allclose(lines["model"].get_xdata(), obs_x)
+
+    figure = likelihood_figure(fit)
+    assert len(figure.axes) == 2
+    for ax, lo, hi in zip(figure.axes, ("top_depth_lo_m", "jump_lo_mv"),
+                          ("top_depth_hi_m", "jump_hi_mv")):
+        values, dchi2 = ax.get_lines()[0].get_data()
+        # the curve passes through Δχ²/s² = 1 at the reported 16 % and 84 % bounds
+        for bound in (row[lo], row[hi]):
+            assert np.interp(bound, values, dchi2) == pytest.approx(1.0, abs=0.02)
+    empty = likelihood_figure(replace(fit, profiles={}))
+    assert len(empty.axes) == 1
