@@ -485,7 +485,11 @@ def execute(project_path, stages, *, out=None, workers=None, scheduler=None, pro
         state.warnings = []
     t0 = time.perf_counter()
     run_stages(project, state, stages, workers=workers, scheduler=scheduler, progress=progress, say=say)
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise InputError(out, f"the output folder cannot be created ({err.strerror}).",
+                         "Give --out a folder you can write to, outside any input file.") from None
     write_state(out, state)
     write_outputs(project, state, out, publish="publish" in stages, say=say)
     state.timings["total"] = round(time.perf_counter() - t0, 3)

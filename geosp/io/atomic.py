@@ -14,7 +14,7 @@ from geosp.errors import InputError
 __all__ = ["OUTPUT_NAMES", "atomic_path", "ensure_not_input"]
 
 #: File names geosp writes in an output folder (contract).
-OUTPUT_NAMES = ("interpretation.gpkg", "sp_grid.tif", "sp_model.tif", "sp_residual.tif",
+OUTPUT_NAMES = ("interpretation.gpkg", "sp_grid.tif", "sp_distance.tif", "sp_model.tif", "sp_residual.tif",
                 "map.html", "report.html", "run.json")
 
 # Side files SQLite or GDAL may leave beside a temporary file.
@@ -93,6 +93,12 @@ def ensure_not_input(out_dir, input_paths, *, output_names=OUTPUT_NAMES):
         Naming the input that would be overwritten and how to avoid it.
     """
     out_dir = Path(out_dir)
+    input_paths = list(input_paths)
+    if out_dir.exists() and not out_dir.is_dir():
+        real_out = os.path.normcase(os.path.realpath(out_dir))
+        is_input = any(item and os.path.normcase(os.path.realpath(Path(item))) == real_out for item in input_paths)
+        raise InputError(out_dir, ("is an input file" if is_input else "is a file") + ", not an output folder.",
+                         "Give --out a folder (new or existing), for example --out results.")
     outputs = {os.path.normcase(os.path.realpath(out_dir / name)): name for name in output_names}
     for item in input_paths:
         if item is None or item == "":

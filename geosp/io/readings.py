@@ -9,7 +9,7 @@ import pandas as pd
 
 from ..errors import InputError, InputErrors, format_rows
 from ..models import ElectrodeChecks, Readings
-from .stations import _missing_columns
+from .stations import _missing_columns, read_csv_text
 
 
 def _read_csv(path, what):
@@ -18,11 +18,7 @@ def _read_csv(path, what):
         raise InputError(path, f"the {what} file does not exist.", "Check the path in [readings].")
     if path.suffix.lower() not in (".csv", ".txt"):
         raise InputError(path, f"unsupported {what} format '{path.suffix}'.", "Save it as a CSV file.")
-    try:
-        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[""], skipinitialspace=True)
-    except Exception as err:
-        raise InputError(path, f"cannot be read as CSV ({str(err).splitlines()[0][:200]}).",
-                         "Save it as comma-separated text with one header line.") from None
+    frame = read_csv_text(path)
     if len(frame) == 0:
         raise InputError(path, f"has a header but no {what} rows.", "Add the rows or remove the file from [readings].")
     return frame

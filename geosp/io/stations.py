@@ -163,14 +163,33 @@ def read_stations(config, *, crs=None):
     return canonical
 
 
+def read_csv_text(path):
+    """
+    Read a comma-separated UTF-8 file (a byte-order mark is fine) as text columns.
+
+    Raises InputError for text that is not UTF-8, a semicolon-separated
+    file, or anything pandas cannot parse.
+    """
+    try:
+        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[""], skipinitialspace=True,
+                            encoding="utf-8")
+    except UnicodeDecodeError as err:
+        raise InputError(path, f"is not UTF-8 text (byte 0x{err.object[err.start]:02x} at byte {err.start}).",
+                         "Save it as 'CSV UTF-8' from your spreadsheet or editor.") from None
+    except Exception as err:
+        text = str(err).strip().splitlines()[0][:200] if str(err).strip() else type(err).__name__
+        raise InputError(path, f"cannot be read as CSV ({text}).",
+                         "Save it as comma-separated text with one header line.") from None
+    if len(frame.columns) == 1 and ";" in str(frame.columns[0]):
+        raise InputError(path, "is semicolon-separated; geosp reads comma-separated files.",
+                         "Save it as comma-separated CSV with a decimal point (not a decimal comma).")
+    return frame
+
+
 def _read_csv_points(path, config, problems):
     if not path.exists():
         raise InputError(path, "the stations file does not exist.", "Check [stations] path in the project file.")
-    try:
-        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[""], skipinitialspace=True)
-    except Exception as err:
-        raise InputError(path, f"cannot be read as CSV ({str(err).splitlines()[0][:200]}).",
-                         "Save it as comma-separated text with one header line.") from None
+    frame = read_csv_text(path)
     if len(frame) == 0:
         raise InputError(path, "has a header but no stations.", "Add the station rows.")
     frame["row"] = np.arange(2, len(frame) + 2)
