@@ -58,7 +58,8 @@ def make_segments(faults, *, snap_m=10.0, simplify_m="auto", bend_deg=20.0,
         Pieces shorter than this (m) are merged into a neighbour on the same
         fault. "auto": three station spacings.
     station_spacing_m : float or None
-        Station spacing (m) for the "auto" values; None uses 25 m.
+        Station spacing (m) for the "auto" values; None (or not a positive
+        number) uses 25 m.
 
     Returns
     -------
@@ -79,13 +80,15 @@ def make_segments(faults, *, snap_m=10.0, simplify_m="auto", bend_deg=20.0,
     * [DouglasPeucker1973]_
     """
     spacing = _DEFAULT_SPACING_M if station_spacing_m is None else float(station_spacing_m)
-    simplify = spacing if simplify_m == "auto" else float(simplify_m)
-    min_length = 3.0 * spacing if min_length_m == "auto" else float(min_length_m)
-    _check_positive(snap_m=snap_m, bend_deg=bend_deg, max_length_m=max_length_m,
-                    station_spacing_m=spacing)
-    if simplify < 0 or min_length < 0:
-        raise OptionError("project file", "simplify_m and min_length_m must be >= 0 or \"auto\".",
-                          "Give a distance in metres.", where="[detect]")
+    if not (np.isfinite(spacing) and spacing > 0):
+        spacing = _DEFAULT_SPACING_M
+    simplify = _auto_value(simplify_m, spacing, "simplify_m")
+    min_length = _auto_value(min_length_m, 3.0 * spacing, "min_length_m")
+    _check_positive(bend_deg=bend_deg, max_length_m=max_length_m)
+    for name, value in (("snap_m", snap_m), ("simplify_m", simplify), ("min_length_m", min_length)):
+        if not (np.isfinite(value) and value >= 0):
+            raise OptionError("project file", f"{name} = {value!r} must be 0 or more (or \"auto\").",
+                              "Give a distance in metres.", where=f"[detect] {name}")
     lines = [_clean_coords(f.coords) for f in faults]
     keep = [i for i, c in enumerate(lines) if c is not None]
     lines = _snap_ends([lines[i] for i in keep], snap_m)
@@ -170,6 +173,16 @@ def corridor_distance(segment, easting, northing, corridor_m):
 
 
 # --------------------------------------------------------------------------- helpers
+
+
+def _auto_value(value, auto, name):
+    if isinstance(value, str) and value == "auto":
+        return auto
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        raise OptionError("project file", f"{name} = {value!r} is not a number.",
+                          'Give a distance in metres or "auto".', where=f"[detect] {name}") from None
 
 
 def _check_positive(**values):
