@@ -104,7 +104,9 @@ def reduce_survey(
         first reading of each line has the pair as in the checks.
         ``"fixed_lead"``: the same electrode leads, each reading carries +δ.
         ``"auto"``: both are tried and the one with the smaller loop-closure
-        χ² is kept (fixed_lead, with a warning, when there are no loops).
+        χ² is kept; when loop closure cannot tell them apart (or there are
+        no loops) leapfrog, the usual field practice, is assumed with a
+        warning.
         Default "auto".
     reading_sigma_mv : float, optional
         1-sigma noise of one gradient reading, mV. Default 1.0.
@@ -526,10 +528,11 @@ def _reduce_gradient(stations, readings, checks, reference, notes, *, drift, mod
         if lf["first"]["dof"] > 0 and abs(gap) > _DECISIVE_CHI2:
             chosen = "leapfrog" if gap < 0 else "fixed_lead"
         else:
-            chosen = "fixed_lead"
+            chosen = "leapfrog"
             notes.add("mode = \"auto\": loop closure cannot tell leapfrog from fixed-lead readings "
-                      f"(χ² differs by {gap:+.1f}); the electrode offset is subtracted as "
-                      "fixed-lead. Set mode in [reduce].")
+                      f"(χ² differs by {gap:+.1f}); the electrode offset is subtracted as in "
+                      "leapfrog, the usual field practice. Set mode in [reduce] if the lead "
+                      "electrode stayed fixed.")
     else:
         chosen = modes[0]
     run = runs[chosen]
