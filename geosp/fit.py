@@ -123,6 +123,16 @@ class _Model:
         self.k_nonlinear = len(names)
         self.k = self.k_nonlinear + self.n_columns + 3
 
+    def canonical(self, p):
+        """Patches sorted by along-strike centre (removes the label-switching symmetry)."""
+        if self.n_patches < 2:
+            return p
+        blocks = p[:4 * self.n_patches].reshape(self.n_patches, 4)
+        order = np.argsort(blocks[:, 0], kind="stable")
+        q = p.copy()
+        q[:4 * self.n_patches] = blocks[order].ravel()
+        return q
+
     # natural parameters ---------------------------------------------------------------
     def patches(self, p):
         """List of dicts (centre, length, top, bottom) plus dip, offset, ratio."""
@@ -369,6 +379,7 @@ class _Problem:
             if all(np.max(np.abs(u[i] - u[j])) > 0.1 for j in chosen):
                 chosen.append(i)
         minima = [self.local_fit(points[i]) for i in chosen]
+        minima = [(self.model.canonical(p), cost) for p, cost in minima]
         minima.sort(key=lambda item: item[1])
         return minima
 
@@ -715,6 +726,7 @@ def _fit_model(model, data, w0, sig, rng, *, n_starts, n_local, huber, huber_pas
             p = minima[0][0]
         else:
             p, _ = problem.local_fit(p)
+            p = model.canonical(p)
         x, _, g, _ = problem.solve(p)
         pred = (g @ x[:model.n_columns] if model.n_columns else 0.0) \
             + data["regional"] @ x[model.n_columns:]

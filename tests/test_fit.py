@@ -401,3 +401,36 @@ def test_figures_and_parameter_table():
             assert np.interp(bound, values, dchi2) == pytest.approx(1.0, abs=0.02)
     empty = likelihood_figure(replace(fit, profiles={}))
     assert len(empty.axes) == 1
+
+
+def test_two_patches_along_strike_recovered():
+    # Two patches of opposite jump on one 3-km segment: the two-patch model must
+    # win by BIC and recover both (same tolerances as one patch); patches are
+    # ordered along strike, so swapping labels is not reported as a second minimum.
+    segment = make_segment(length_m=3000.0)
+    second = {"centre_m": 2300.0, "length_m": 1000.0, "top": 300.0, "bottom": 900.0,
+              "dip": 90.0, "jump": -120.0}
+    first = dict(TRUTH, centre_m=800.0, length_m=1000.0)
+
+    def second_patch(easting, northing):
+        s, t = segment.to_local(easting, northing)
+        return patch_sp_local(s, t, centre_m=second["centre_m"], length_m=second["length_m"],
+                              depth_top_m=second["top"], depth_bottom_m=second["bottom"],
+                              dip_deg=90.0, jump_mv=second["jump"])
+
+    stations, detection = make_survey(segment, truth=first, extra=second_patch, n_lines=12,
+                                      spacing_m=25.0)
+    fit = fit_segment(stations, detection, models=("fault_patch", "two_patches"),
+                      n_starts=256, n_local=4, uncertainty="jacobian")
+    assert fit.chosen == "two_patches"
+    assert "multimodal" not in fit.flags
+    rows = fit.sources
+    assert [r["source_id"] for r in rows] == ["F1-1-P1", "F1-1-P2"]
+    for row, truth in zip(rows, (first, second)):
+        s, _ = segment.to_local(row["top_x"], row["top_y"])
+        assert abs(s - truth["centre_m"]) < 100.0
+        assert abs(row["top_depth_m"] - truth["top"]) < 0.2 * truth["top"]
+        geo_mean = np.sqrt(truth["top"] * truth["bottom"])
+        assert abs(row["geo_mean_depth_m"] - geo_mean) < 0.1 * geo_mean
+        assert np.sign(row["jump_mv"]) == np.sign(truth["jump"])
+        assert row["dip_deg"] == rows[0]["dip_deg"]  # shared dip
