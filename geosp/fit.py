@@ -219,7 +219,7 @@ class _Model:
         return jac
 
     def natural_transform(self, p):
-        """Matrix T (n_natural, k_nonlinear): ∂natural/∂p, natural in the order of ``natural_names``."""
+        """Matrix T (n_natural, k_nonlinear): ∂natural/∂p, rows in ``natural_names`` order."""
         k = self.k_nonlinear
         if self.name == "pole_pair":
             t = np.eye(k)
@@ -444,7 +444,7 @@ def _covariance(problem, p, x, s2):
     j_theta = np.einsum("nmk,m->nk", dg, x[:m]) * problem.sw[:, None]
     aw = np.hstack([g * problem.sw[:, None], problem.regional_w])
     jac = np.hstack([j_theta, aw])
-    u, sv, vt = np.linalg.svd(jac, full_matrices=False)
+    _, sv, vt = np.linalg.svd(jac, full_matrices=False)
     keep = sv > sv[0] * 1e-10
     inv = (vt[keep].T / sv[keep] ** 2) @ vt[keep]
     cov_t = s2 * inv
@@ -641,7 +641,6 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
     bic = dict(zip(selection["model"], selection["bic"]))
     gains = {m: bic["none"] - bic[m] for m in models}
     selection["bic_gain"] = [0.0 if m == "none" else gains[m] for m in selection["model"]]
-    bic_gain = gains.get("fault_patch", max(gains.values()) if gains else 0.0)
     eligible = [m for m in models if gains[m] >= min_bic_gain]
     chosen = min(eligible, key=lambda m: bic[m]) if eligible else "none"
 
