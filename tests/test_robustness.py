@@ -665,3 +665,59 @@ def test_inputs_geosp_can_work_around(build, tmp_path, capsys):
     for fragment in case.fragments:
         assert fragment in out, (fragment, out)
     assert snapshot(tmp_path) == before
+
+
+# --------------------------------------------------------------------------- hostile text in the pages
+
+CHROMIUM = "/usr/bin/chromium"
+HOSTILE = ('<img src=x onerror="window.__pwned=1">', "</script><script>window.__pwned=2</script>",
+           '"><svg onload=window.__pwned=3>')
+
+
+@pytest.mark.slow
+@pytest.mark.browser
+@pytest.mark.skipif(not Path(CHROMIUM).exists(), reason=f"{CHROMIUM} is missing (Debian chromium package)")
+def test_hostile_values_reach_the_pages_as_text_only(tmp_path, capsys):
+    """
+    Station ids, a line id, the fault name and the survey name carry markup
+    that runs script if a page inserts it unescaped; after a whole run both
+    pages, opened in chromium, must show it as text and never run it.
+    """
+    import json
+
+    sync_api = pytest.importorskip("playwright.sync_api", reason="python playwright is not installed")
+    frame, fault = small_survey()
+    for k, (row, text) in enumerate(zip((3, 60, 150), HOSTILE)):
+        frame.loc[row, "STN"] = f"{text}-{k}"
+    frame.loc[frame.LINE == "L02", "LINE"] = HOSTILE[1]
+    project = write_survey(tmp_path / "s", "gpkg", frame=frame, fault=fault,
+                           extra_project=FAST.replace("false", "true"))
+    gpd.GeoDataFrame({"FAULT": [HOSTILE[0]], "dip": [80.0], "dip_dir": [90.0]}, geometry=[fault], crs=UTM).to_file(
+        project.parent / "faults.gpkg", layer="faults")
+    name = " ".join(HOSTILE)
+    edit(project, 'name = "Test survey"', f"name = {json.dumps(name)}")  # a TOML basic string
+    out = tmp_path / "out"
+    code = main(["run", str(project), "--out", str(out), "--workers", "1", "--quiet"])
+    assert code == 0, capsys.readouterr().err
+
+    with sync_api.sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=CHROMIUM, args=[
+            "--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update",
+            "--no-first-run", "--disable-sync"])
+        try:
+            for page_name in ("map.html", "report.html"):
+                page = browser.new_page()
+                page.route("**/*", lambda r: r.continue_() if r.request.url.startswith(("file:", "data:"))
+                           else r.abort())
+                page.goto((out / page_name).as_uri())
+                page.wait_for_load_state("load")
+                page.wait_for_timeout(500)
+                assert page.evaluate("typeof window.__pwned") == "undefined", page_name
+                assert page.evaluate("document.querySelectorAll('img[src=\"x\"], svg[onload]').length") == 0
+                text = page.inner_text("body")
+                # The survey name (all three values) is the title of both pages.
+                for value in HOSTILE:
+                    assert value in text, (page_name, value)
+                page.close()
+        finally:
+            browser.close()
