@@ -25,13 +25,15 @@ def build_survey(seed=0):
     y = np.arange(0.0, 33000.0 + 1, 200.0)
     east, north = (a.ravel() for a in np.meshgrid(x, y))
     faults = []
-    # 250 faults of 3 km on a jittered 25 × 10 grid (1200 m × 3300 m), strikes
-    # N ± 10°: no crossings, two 1.5 km segments each with max_length_m = 2500.
+    # 250 faults of 3 km on a jittered 25 × 10 grid (800 m × 3300 m) in the
+    # western 20 km, strikes N ± 8°: no crossings, two 1.5 km segments each
+    # with max_length_m = 2500. The eastern 10 km stay free of mapped faults,
+    # where decoys (trace ≥ one corridor from every fault) can go.
     for i in range(25):
         for j in range(10):
-            cx = 600.0 + 1200.0 * i + rng.uniform(-100, 100)
+            cx = 400.0 + 800.0 * i + rng.uniform(-80, 80)
             cy = 1650.0 + 3300.0 * j + rng.uniform(-100, 100)
-            phi = np.radians(rng.uniform(-10, 10))
+            phi = np.radians(rng.uniform(-8, 8))
             half = 1500.0 * np.array([np.sin(phi), np.cos(phi)])
             faults.append(Fault(f"F{i:02d}{j:02d}", np.array([[cx, cy] - half, [cx, cy] + half])))
     sp = 15.0 * np.sin(east / 7000.0) + 0.002 * north + rng.normal(0.0, 5.0, east.size)

@@ -15,8 +15,8 @@ For each segment (docs/concepts.md, detection):
    and at least ``min_score``;
 4. detected segments are compared with a shallow pole pair (cultural
    sources such as casings or pipelines), and detected segments whose
-   corridors share more than half their stations keep only the higher
-   score.
+   anomaly footprints (inner half of the corridors) share more than half
+   their stations keep only the higher score.
 """
 
 from __future__ import annotations
@@ -48,7 +48,10 @@ _K_POLE_PAIR = 3 + 1 + 5
 #: up the decoy set when too few have as many (a footprint aligned with the
 #: survey lines catches whole lines at its edges, a rotated copy rarely does).
 _PARTIAL_FRACTION = 0.8
-#: Fraction of corridor stations two detected segments may share before the
+#: Anomaly footprint of a segment for the shared-anomaly rule, as a fraction
+#: of the corridor (half-width and end extension).
+_FOOTPRINT = 0.5
+#: Fraction of footprint stations two detected segments may share before the
 #: lower score is treated as the same anomaly.
 _SHARED_FRACTION = 0.5
 
@@ -97,7 +100,14 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
     Returns
     -------
     detections : tuple of Detection
-        One per segment, in the order given.
+        One per segment, in the order given. ``station_index`` holds the
+        stations the segment owns (nearest segment, inside its corridor);
+        ``best_template`` the best template's ``depth_top_m``,
+        ``depth_bottom_m``, ``dip_deg``, its amplitude ``jump_mv`` ±
+        ``jump_sigma_mv`` (mV), the ``corridor_m`` used and, for detected
+        segments, ``pole_pair_delta_bic`` (BIC of the template minus BIC of
+        the best shallow pole pair). ``note`` says why in a few words.
+        Unscored segments (too few stations) have NaN score and polarity 0.
 
     Raises
     ------
@@ -125,7 +135,7 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
     depths = np.asarray(template_top_depths_m, dtype=float).ravel()
     ratios = np.asarray(template_height_ratios, dtype=float).ravel()
     _check_options(depths, ratios, false_alarm_rate, n_decoys, min_score, cultural_max_depth_m,
-                   corridor_m)
+                   corridor_m, seed)
     segments = tuple(segments)
     valid = np.isfinite(stations.sp_mv) & np.isfinite(stations.easting) \
         & np.isfinite(stations.northing) & (np.asarray(stations.weight, dtype=float) > 0)
@@ -154,7 +164,7 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
 
 
 def _check_options(depths, ratios, false_alarm_rate, n_decoys, min_score, cultural_max_depth_m,
-                   corridor_m):
+                   corridor_m, seed):
     problems = []
     if depths.size == 0 or not np.all(np.isfinite(depths) & (depths > 0)):
         problems.append(("template_top_depths_m", "must be a list of positive depths in m"))
@@ -162,6 +172,8 @@ def _check_options(depths, ratios, false_alarm_rate, n_decoys, min_score, cultur
         problems.append(("template_height_ratios", "must be a list of ratios above 1"))
     if not 0 < false_alarm_rate < 1:
         problems.append(("false_alarm_rate", "must lie between 0 and 1 (e.g. 0.01)"))
+    if not isinstance(seed, (int, np.integer)) or seed < 0:
+        problems.append(("seed", "must be a whole number >= 0"))
     if int(n_decoys) < 0:
         problems.append(("n_decoys", "must be 0 or more"))
     if not np.isfinite(min_score) or min_score < 0:
@@ -593,6 +605,7 @@ def _detect_segment(segment, pos, data, corridor, depths, ratios, false_alarm_ra
         "depth_top_m": z_t, "depth_bottom_m": z_b, "dip_deg": dip,
         "jump_mv": float(real["amplitude"][0]),
         "jump_sigma_mv": float(real["amplitude_sigma"][0]),
+        "corridor_m": float(corridor),
     }
     polarity = 1 if real["amplitude"][0] >= 0 else -1
     cultural = False
@@ -702,8 +715,13 @@ def _pole_pair_gain(segment, along, across, data, weights, chi2_template, max_de
 
 def _resolve_shared(detections, stations, valid_index, corridor):
     """
-    Where two detected segments' corridors share more than half the stations
-    of the smaller one, keep the higher score detected and note the other.
+    Where two detected segments' anomaly footprints share more than half the
+    stations of the smaller one, keep the higher score detected and note the
+    other. The footprint is the inner half of the corridor (|t| and the end
+    extension ≤ corridor/2 = 1.5 × the deepest template top with the auto
+    corridor), where a patch anomaly is strongest; whole corridors would
+    merge genuinely separate anomalies on parallel faults closer than the
+    corridor width.
     """
     detected = [i for i, d in enumerate(detections) if d.detected]
     if len(detected) < 2:
@@ -714,7 +732,7 @@ def _resolve_shared(detections, stations, valid_index, corridor):
     boxes = {}
     for i in detected:
         seg = detections[i].segment
-        inside, _ = _corridor_distance(seg, easting, northing, corridor)
+        inside, _ = _corridor_distance(seg, easting, northing, _FOOTPRINT * corridor)
         sets[i] = np.flatnonzero(inside)
         c = np.asarray(seg.coords)
         boxes[i] = (c[:, 0].min() - corridor, c[:, 0].max() + corridor,

@@ -227,6 +227,14 @@ def test_too_few_stations_is_noted():
     assert d.n_stations == 3
     assert d.note.startswith("too few stations (3")
     assert np.isnan(d.score)
+    # Unscored segments still appear in the table (last) and on the map (grey).
+    table = detection_table([d])
+    assert table.segment_id.tolist() == ["X-01"] and np.isnan(table.score[0])
+    figure = detection_figure([d], stations)
+    assert figure.axes[0].lines[0].get_color() == "0.6"
+    import matplotlib.pyplot as plt
+
+    plt.close(figure)
 
 
 def test_bad_option_raises_option_error():
