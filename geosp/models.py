@@ -373,3 +373,6 @@ class FlowModel:
     fluid_heat_capacity_j_m3_k: float = 4.18e6
     title: str = ""
     source_path: str = ""
+    profile_origin_xy: tuple | None = None  # world (easting, northing) of profile x = 0
+    profile_azimuth_deg: float = 90.0  # direction of +x, clockwise from grid north
+    crs: str = ""  # projected CRS of profile_origin_xy, for map layers
