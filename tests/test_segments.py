@@ -152,6 +152,15 @@ def test_segment_ids_follow_digitised_order():
 def test_bad_option_raises_option_error():
     with pytest.raises(OptionError, match="bend_deg"):
         make_segments((_fault("A", [[0, 0], [0, 100]]),), bend_deg=-5)
+    with pytest.raises(OptionError, match="simplify_m"):
+        make_segments((_fault("A", [[0, 0], [0, 100]]),), simplify_m="coarse")
+
+
+def test_snap_zero_leaves_near_miss_unjoined():
+    # snap_m = 0 turns snapping off: B stops 6 m short of A and stays apart.
+    segs = make_segments((_fault("A", [[-600, 0], [600, 0]]), _fault("B", [[100, 800], [100, 6]])),
+                         snap_m=0.0)
+    assert sorted(s.segment_id for s in segs) == ["A-01", "B-01"]
 
 
 def test_assign_stations_matches_brute_force_distances():
