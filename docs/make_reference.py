@@ -359,7 +359,8 @@ COMMAND_NOTES = {
                 "stages; runs any stage that is missing first."),
     "forward": ("Predicted SP of the sources in a GeoPackage `sources` layer at the given stations: survey "
                 "design and what-if. Without `--out` it prints a table; with `--out` ending in `.gpkg` or "
-                "`.csv` it writes the stations with a `model_mv` column. See the "
+                "`.csv` it writes the stations with a `model_mv` column (mV; in a GeoPackage, layer `forward`). "
+                "Sources must be in a projected CRS; CSV stations give `x`,`y` in that CRS or `lon`,`lat`. See the "
                 "[tutorial](tutorial.md#survey-design-with-geosp-forward)."),
     "init": "Writes the commented project-file template (default `project.toml`); never overwrites a file.",
 }
