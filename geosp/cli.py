@@ -148,6 +148,10 @@ def main(argv=None):
             raise
         print(f"geosp: error: {err}", file=sys.stderr)
         return 2
+    except BrokenPipeError:
+        # The reader of our output (e.g. `| head`) went away: not an error of geosp.
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print("geosp: interrupted; outputs already written are complete, nothing half-written was kept.",
               file=sys.stderr)

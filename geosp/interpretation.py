@@ -60,15 +60,12 @@ def rasters(state):
 
 
 def _regional(regional, easting, northing):
-    """Evaluate the joint regional ``c0 + ce·(e − e0) + cn·(n − n0)`` (keys as the fit step stores them)."""
+    """Evaluate the joint regional plane ``c0 + east·(e − e0) + north·(n − n0)`` stored by the fit step."""
     if not regional:
         return np.zeros_like(easting)
-    c0 = regional.get("c0_mv", 0.0)
-    ce = regional.get("ce_mv_per_m", 0.0)
-    cn = regional.get("cn_mv_per_m", 0.0)
-    e0 = regional.get("e0_m", 0.0)
-    n0 = regional.get("n0_m", 0.0)
-    return c0 + ce * (easting - e0) + cn * (northing - n0)
+    return (regional.get("c0_mv", 0.0)
+            + regional.get("east_mv_per_m", 0.0) * (easting - regional.get("east0_m", 0.0))
+            + regional.get("north_mv_per_m", 0.0) * (northing - regional.get("north0_m", 0.0)))
 
 
 def source_ground(state, rows):

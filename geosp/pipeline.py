@@ -529,7 +529,9 @@ def write_outputs(project, state, out, *, publish=False, say=None):
 
             html = make_webmap(stations=layers["stations"], segments=layers.get("fault_segments"),
                                sources=layers.get("sources"), grid=rasters.get("sp_grid.tif"), title=title,
-                               tiles=options.get("tiles") or None, cautions=interpretation.CAUTIONS)
+                               tiles=options.get("tiles") or None,
+                               tiles_attribution=options.get("tiles_attribution", ""),
+                               cautions=interpretation.CAUTIONS)
             with atomic_path(out / "map.html") as tmp:
                 tmp.write_text(html, encoding="utf-8")
             written.append("map.html")

@@ -87,7 +87,8 @@ def _type_ok(value, default):
     if isinstance(default, (list, tuple)):
         return isinstance(value, list)
     if isinstance(default, str):
-        return isinstance(value, (str, int, float)) and not isinstance(value, bool)
+        # String defaults such as "auto" or "cv" stand for a choice; a number or a list may replace them.
+        return isinstance(value, (str, int, float, list)) and not isinstance(value, bool)
     return True
 
 
