@@ -1,0 +1,60 @@
+"""
+End to end on the bundled demo area: every output is written and opens, and the
+fitted sources are compared with what was planted (demo_area/truth.json).
+
+Tolerances are those of the fitting stage on synthetic data: top depth within
+20 % and √(top·bottom) within 10 % (demo_area/compare.py).
+"""
+
+import json
+
+import pytest
+
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    from geosp import pipeline
+
+    out = tmp_path_factory.mktemp("demo")
+    out, state = pipeline.demo(out, workers=2)
+    return out, state
+
+
+def test_every_output_exists_and_opens(demo_run):
+    import pyogrio
+    import rasterio
+
+    out, _ = demo_run
+    layers = {name for name, _ in pyogrio.list_layers(out / "interpretation.gpkg")}
+    assert {"stations", "fault_segments", "sources", "sources_3d"} <= layers
+    for name in ("sp_grid.tif", "sp_model.tif", "sp_residual.tif"):
+        with rasterio.open(out / name) as src:
+            band = src.read(1, masked=True)
+            assert src.crs.to_epsg() == 32633 and band.count() > 1000
+            assert src.tags().get("units") == "mV"
+    html = (out / "map.html").read_text(encoding="utf-8")
+    assert "non-unique" in html and "licensed professionals" in html
+    report = (out / "report.html").read_text(encoding="utf-8")
+    assert "non-unique" in report and "data:image/png;base64," in report
+    provenance = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    assert provenance["geosp_version"] and "dipoles.csv" in provenance["inputs"]
+
+
+def test_planted_patches_recovered(demo_run):
+    from demo_area.compare import compare_sources
+
+    _, state = demo_run
+    table = compare_sources(state.fits.sources)
+    assert table["found"].all(), table[["planted", "found"]]
+    bad = table[~table["within_tolerance"]]
+    assert bad.empty, bad[["planted", "top_depth_m", "top_depth_true_m", "geo_mean_m", "geo_mean_true_m"]]
+
+
+def test_nothing_reported_on_clean_faults_or_at_the_pipeline(demo_run):
+    from demo_area.compare import false_sources
+
+    _, state = demo_run
+    found = false_sources(state.fits.sources)
+    assert found == {"source_free_faults": [], "at_pipeline": []}
