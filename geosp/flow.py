@@ -33,7 +33,7 @@ from __future__ import annotations
 
 import logging
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import scipy.sparse as sparse
@@ -45,8 +45,8 @@ from .models import FlowModel
 logger = logging.getLogger(__name__)
 
 __all__ = [
-    "TensorMesh", "FlowResult", "make_mesh", "region_masks", "solve_pressure", "solve_heat",
-    "solve_sp", "run_flow_model",
+    "TensorMesh", "FlowResult", "make_mesh", "assign_regions", "solve_pressure", "solve_heat",
+    "solve_sp", "compute_darcy_flux", "sample_surface_sp", "run_flow_model",
 ]
 
 
@@ -178,7 +178,7 @@ def _inside(mesh, shape):
     return (x >= x0) & (x <= x1) & (y >= y0) & (y <= y1) & (z >= z0) & (z <= z1)
 
 
-def region_masks(mesh, regions):
+def assign_regions(mesh, regions):
     """
     Index of the region that owns each cell.
 
@@ -201,7 +201,6 @@ def region_masks(mesh, regions):
 
 def _point_weights(mesh, point):
     """Cloud-in-cell weights (flat indices, weights) of a point on cell centres."""
-    indices, weights = [np.zeros(1, dtype=int)], [np.ones(1)]
     flat_index = np.arange(mesh.n_cells).reshape(mesh.shape)
     per_axis = []
     for c, p in zip(mesh.centres, point):
@@ -389,7 +388,7 @@ def solve_pressure(mesh, mobility, *, source=None, fixed_mask=None, fixed_values
     return p.reshape(mesh.shape)
 
 
-def darcy_face_flux(mesh, mobility, pressure):
+def compute_darcy_flux(mesh, mobility, pressure):
     """
     Darcy volume fluxes through the faces (m³/s; per metre of strike in sections).
 
@@ -421,7 +420,7 @@ def solve_heat(mesh, conductivity, *, source=None, fixed_mask=None, fixed_values
     fixed_mask, fixed_values : array or None
         Cells held at a fixed temperature (K above the surface temperature).
     darcy_flux : tuple or None
-        Face fluxes from :func:`darcy_face_flux` for advection (first-order
+        Face fluxes from :func:`compute_darcy_flux` for advection (first-order
         upwind); None for conduction only.
     heat_capacity_j_m3_k : float
         Volumetric heat capacity of the fluid ρ_f c_f (J/(m³·K)).
@@ -597,7 +596,7 @@ class FlowResult:
 
 def _properties(mesh, model):
     regions = (model.background,) + tuple(model.regions)
-    index = region_masks(mesh, model.regions)
+    index = assign_regions(mesh, model.regions)
     props = {}
     for name in ("sigma_s_m", "c_p_v_pa", "c_t_v_k", "mobility_m2_pa_s",
                  "thermal_conductivity_w_m_k"):
@@ -623,7 +622,7 @@ def _fixed(mesh, model, equation):
     return mask, values
 
 
-def surface_sp(result, x_m, *, y_m=None):
+def sample_surface_sp(result, x_m, *, y_m=None):
     """
     Interpolate the surface SP of a :class:`FlowResult` (mV) at positions.
 
@@ -713,7 +712,7 @@ def run_flow_model(model, *, stations=None, solver="auto"):
         mask, values = _fixed(mesh, model, "heat")
         flux = None
         if model.heat_advection and pressure is not None:
-            flux = darcy_face_flux(mesh, props["mobility_m2_pa_s"], pressure)
+            flux = compute_darcy_flux(mesh, props["mobility_m2_pa_s"], pressure)
         temperature = solve_heat(mesh, props["thermal_conductivity_w_m_k"],
                                  source=_source_vector(mesh, sources, where), fixed_mask=mask,
                                  fixed_values=values, darcy_flux=flux,
@@ -730,10 +729,10 @@ def run_flow_model(model, *, stations=None, solver="auto"):
                          temperature_k=temperature, potential_mv=1e3 * potential,
                          surface_mv=1e3 * surface, profile_x_m=profile_x,
                          profile_mv=np.empty(0))
-    extra = {"profile_mv": surface_sp(partial, profile_x)}
+    extra = {"profile_mv": sample_surface_sp(partial, profile_x)}
     if stations is not None:
         sx, observed = (np.asarray(a, dtype=float) for a in stations)
-        predicted = surface_sp(partial, sx)
+        predicted = sample_surface_sp(partial, sx)
         residual = observed - predicted
         offset = float(np.mean(residual)) if residual.size else 0.0
         extra.update(station_x_m=sx, observed_mv=observed, predicted_mv=predicted,
@@ -741,6 +740,4 @@ def run_flow_model(model, *, stations=None, solver="auto"):
                      rms_mv=float(np.sqrt(np.mean(residual**2))) if residual.size else 0.0,
                      rms_offset_mv=float(np.sqrt(np.mean((residual - offset) ** 2)))
                      if residual.size else 0.0)
-    from dataclasses import replace
-
     return replace(partial, seconds=time.perf_counter() - start, **extra)

@@ -140,15 +140,18 @@ def test_contact_with_line_source_matches_double_layer_quadrature(sigma_ratio):
     assert error < 5e-3 * np.abs(reference).max()
 
 
-def _strip_error(h, *, dip_deg=90.0, top=1.0, bottom=3.0):
+def _strip_error(h, *, dip_deg=90.0, top=1.0, bottom=3.0, padding_factor=1.3):
     """Max and RMS surface error of a prescribed-jump strip (f = 1) against strip_2d_sp."""
-    mesh = flow.make_mesh([(-6.0, 6.0)], 5.0, h)
+    mesh = flow.make_mesh([(-6.0, 6.0)], 5.0, h, padding_factor=padding_factor,
+                          padding_m=1000.0)
     x, z = mesh.grid()
     # Hanging wall: x > z·cot(dip). C_P = −1 there and P = 1 between top and bottom give
     # f = −[C_P]·P = +1 on the dip-direction side.
+    # The hanging wall reaches past the far boundaries, so the only C_P contact that
+    # meets P ≠ 0 is the fault.
     foot = 6.0 / np.tan(np.radians(dip_deg))
-    hanging = FlowRegion("hw", np.array([[0.0, 0.0], [1e3, 0.0], [1e3, 6.0], [foot, 6.0]]), 1.0)
-    index = flow.region_masks(mesh, [hanging])
+    hanging = FlowRegion("hw", np.array([[0.0, 0.0], [1e5, 0.0], [1e5, 6.0], [foot, 6.0]]), 1.0)
+    index = flow.assign_regions(mesh, [hanging])
     c_p = np.where(index == 1, -1.0, 0.0)
     p = ((z > top) & (z < bottom)).astype(float)
     _, surface = flow.solve_sp(mesh, 1.0, c_p=c_p, pressure=p)
@@ -164,12 +167,15 @@ def _strip_error(h, *, dip_deg=90.0, top=1.0, bottom=3.0):
 def test_vertical_strip_matches_closed_form_and_converges():
     # Reference: (f/π)·(arctan(z_b/t) − arctan(z_t/t)) via geosp.physics.forward.strip_2d_sp
     # [Kellogg1929]; physics §9 row 11 (peak f/6 at t = √3). With faces on the contact
-    # and on the strip ends the error is a few 1e-3 of the peak at h = z_t/10, and
-    # halving h must cut it at least by the O(h) factor 2 (×0.6 allowed for round-off of
-    # the ratio; physics §8 says staircases converge at least as O(h)).
+    # and on the strip ends the error is a few 1e-3 of the peak at h = z_t/10 (observed
+    # 2.8e-3 max). Padding cells growing by 1.3 leave an error floor near 1e-3 of the peak
+    # (the 2-D tail decays only as 1/t), so convergence is shown with growth 1.1: halving
+    # h must cut the error at least by the O(h) factor 2 (×0.6 allowed; physics §8 says
+    # staircases converge at least as O(h); observed ×0.3).
     coarse, _ = _strip_error(0.1)
-    fine, _ = _strip_error(0.05)
     assert coarse < 5e-3
+    coarse, _ = _strip_error(0.1, padding_factor=1.1)
+    fine, _ = _strip_error(0.05, padding_factor=1.1)
     assert fine < 0.6 * coarse
 
 
@@ -177,12 +183,15 @@ def test_vertical_strip_matches_closed_form_and_converges():
 def test_dipping_staircase_strip_converges():
     # Reference: strip_2d_sp for dip 60° [Kellogg1929]; physics §8 ladder item 6 gives an
     # RMS error of 2.4 / 1.2 / 0.37 % of the peak at h = 0.08 / 0.04 / 0.02 z_t for a
-    # staircase 60° strip. Here the polygon region is rasterised on cell centres; require
-    # the RMS error under 3 % at h = 0.1 z_t and at least O(h) decrease on halving.
-    _, rms_coarse = _strip_error(0.1, dip_deg=60.0)
-    _, rms_fine = _strip_error(0.05, dip_deg=60.0)
+    # staircase 60° strip. Here the polygon region is rasterised on cell centres, so the
+    # error depends on how the staircase falls on the grid and is not monotone step by
+    # step (observed 1.5 / 0.10 / 0.22 % at h = 0.1 / 0.05 / 0.025 z_t). Require under
+    # 3 % at h = 0.1 z_t and, over a factor 4 in h, at least the O(h) gain with margin
+    # (error ratio below 0.5 rather than 0.25).
+    _, rms_coarse = _strip_error(0.1, dip_deg=60.0, padding_factor=1.1)
+    _, rms_fine = _strip_error(0.025, dip_deg=60.0, padding_factor=1.1)
     assert rms_coarse < 0.03
-    assert rms_fine < 0.6 * rms_coarse
+    assert rms_fine < 0.5 * rms_coarse
 
 
 def test_anomaly_largest_with_source_at_contact():
@@ -225,7 +234,7 @@ def test_heat_conduction_matches_image_solution_and_advection_lifts_plume():
     fluid = flow._source_vector(mesh, [FlowSource("q", "pressure", "point",
                                                   np.array([0.0, 3.0]), 1e-6)])
     p = flow.solve_pressure(mesh, 1e-9, source=fluid)
-    flux = flow.darcy_face_flux(mesh, 1e-9, p)
+    flux = flow.compute_darcy_flux(mesh, 1e-9, p)
     t_adv = flow.solve_heat(mesh, 2.5, source=heat, darcy_flux=flux)
     column = np.argmin(np.abs(mesh.centres[0]))
     above = np.argmin(np.abs(mesh.centres[1] - 1.0))
