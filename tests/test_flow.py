@@ -302,28 +302,35 @@ def test_run_flow_model_fixed_temperature_and_errors():
         flow.run_flow_model(_model(sources=()))
 
 
-@pytest.mark.slow
-def test_3d_rectangle_matches_closed_form_patch():
-    # Reference: a vertical rectangular patch with uniform jump f = 1 is the closed-form
-    # solid angle of physics §2.2 (geosp.physics.forward.patch_sp_local, verified against
-    # §9 row 6) [Kellogg1929]. Prescribed P = 1 on the patch's depth and strike range with a
-    # C_P contrast across x = 0; AMG-CG solve. Tolerance 3 % of the peak at h = z_t/4
-    # (discretisation of a patch only 8 cells tall; it falls with h).
-    h = 0.25
+def _patch_error_3d(h):
+    """Max surface error (fraction of the peak) of a vertical 3-D patch against the closed form."""
     mesh = flow.make_mesh([(-4.0, 4.0), (-4.0, 4.0)], 4.0, h, padding_m=60.0)
     x, y, z = mesh.grid()
     p = ((z > 1) & (z < 3) & (np.abs(y) < 2)).astype(float)
-    c_p = np.where(x > 0, -1.0, 0.0)
-    _, surface = flow.solve_sp(mesh, 1.0, c_p=c_p, pressure=p)
+    _, surface = flow.solve_sp(mesh, 1.0, c_p=np.where(x > 0, -1.0, 0.0), pressure=p)
     xc, yc = mesh.centres[0], mesh.centres[1]
-    row = np.argmin(np.abs(yc - 0.125))
+    row = np.argmin(np.abs(yc))
     keep = np.abs(xc) < 4
     reference = patch_sp_local(np.full(keep.sum(), yc[row]), xc[keep], centre_m=0.0,
                                length_m=4.0, depth_top_m=1.0, depth_bottom_m=3.0,
                                dip_deg=90.0, jump_mv=1.0)
-    error = np.abs(surface[keep, row] - reference).max()
-    assert error < 0.03 * np.abs(reference).max()
+    return np.abs(surface[keep, row] - reference).max() / np.abs(reference).max(), mesh
+
+
+@pytest.mark.slow
+def test_3d_rectangle_matches_closed_form_patch():
+    # Reference: a vertical rectangular patch with uniform jump f = 1 is the closed-form
+    # solid angle of physics §2.2 (geosp.physics.forward.patch_sp_local, verified against
+    # §9 row 6) [Kellogg1929]. Prescribed P = 1 on the patch's depth and strike range with
+    # a C_P contrast across x = 0; AMG-CG solve. Observed 10.6 % and 2.6 % of the peak at
+    # h = z_t/2 and z_t/4 (a patch only 4 and 8 cells tall): require < 4 % at z_t/4 and at
+    # least the O(h) gain on halving h (ratio < 0.5).
+    coarse, _ = _patch_error_3d(0.5)
+    fine, mesh = _patch_error_3d(0.25)
+    assert fine < 0.04
+    assert fine < 0.5 * coarse
     # Uniform coupling in 3-D: no SP (physics §1 item 1), to the iterative tolerance.
+    x, y, z = mesh.grid()
     _, flat = flow.solve_sp(mesh, np.where(z < 2, 1.0, 3.0), c_p=-1.0,
                             pressure=np.exp(-((x**2 + y**2 + (z - 2) ** 2))))
     assert np.abs(flat).max() < 1e-7
