@@ -10,6 +10,7 @@ the caller passes their defaults so this module stays below the steps.
 from __future__ import annotations
 
 import difflib
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -77,13 +78,13 @@ def _suggest(word, options):
     return f" Did you mean '{close[0]}'?" if close else ""
 
 
-def _type_ok(value, default):
+def _type_ok(value, default, *, auto=True):
     if default is None:
         return True
     if isinstance(default, bool):
         return isinstance(value, bool)
     if isinstance(default, (int, float)):
-        return (isinstance(value, (int, float)) and not isinstance(value, bool)) or value == "auto"
+        return (isinstance(value, (int, float)) and not isinstance(value, bool)) or (auto and value == "auto")
     if isinstance(default, (list, tuple)):
         return isinstance(value, list)
     if isinstance(default, str):
@@ -155,10 +156,13 @@ def read_project(path, *, stage_defaults=None):
                 problems.append(OptionError(
                     path, f"unknown key '{key}' in [{section}].{_suggest(key, defaults)}",
                     f"Known keys in [{section}]: {known}."))
-            elif not _type_ok(value, defaults[key]):
+            elif not _type_ok(value, defaults[key], auto=section in STAGE_SECTIONS):
                 problems.append(OptionError(
                     path, f"[{section}] {key} = {value!r} has the wrong type.",
                     f"Give {_describe(defaults[key])}" + (f" (default {defaults[key]!r})." if defaults[key] != "" else ".")))
+            elif section == "stations" and key == "value_scale" and not (math.isfinite(value) and value != 0):
+                problems.append(OptionError(path, f"[stations] value_scale = {value!r} must be a non-zero number.",
+                                            "Use 1 for millivolts (the default) or 1000 for volts."))
     for section in ("stations", "faults"):
         if section not in data:
             problems.append(OptionError(path, f"the [{section}] section is missing.",
