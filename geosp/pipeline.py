@@ -29,6 +29,9 @@ _INTERNAL = {"progress", "station_spacing_m", "corridor_hint_m"}
 # Faults farther than this from every station are out of reach.
 FAULT_REACH_M = 2000.0
 
+# A station farther than this from the median station position is a coordinate error.
+FAR_STATION_M = 200_000.0
+
 
 def _kwonly_defaults(func):
     out = {}
@@ -158,6 +161,17 @@ def load_survey(project):
         source_row=gdf["row"].to_numpy(),
     )
     problems = []
+    distance = np.hypot(stations.easting - np.median(stations.easting),
+                        stations.northing - np.median(stations.northing))
+    far = distance > FAR_STATION_M
+    if far.any():
+        label = "line" if gdf.attrs.get("csv") else "feature"
+        rows = [f"{s} ({label} {r}, {d / 1000:.0f} km)" for s, r, d in
+                zip(stations.station_id[far], stations.source_row[far], distance[far])]
+        problems.append(InputError(project.stations["path"], f"{far.sum()} station(s) lie more than "
+                                   f"{FAR_STATION_M / 1000:.0f} km from the middle of the survey: {format_rows(rows)}.",
+                                   "Check their coordinates (a typing error, or x and y swapped) and the CRS; "
+                                   "a project holds one survey area."))
     reference = ""
     if readings is not None:
         known = set(stations.station_id)
@@ -303,6 +317,7 @@ class RunState:
     fits: object = None
     timings: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
+    terrain_first_pass: dict = field(default_factory=dict)
 
 
 def _timed(state, name):
@@ -422,7 +437,50 @@ def run_stages(project, state, stages, *, workers=None, scheduler=None, progress
             run_detect(project, state, progress=_progress(progress, "detect"))
         elif stage == "fit":
             run_fit(project, state, workers=workers, scheduler=scheduler, progress=_progress(progress, "fit"))
+            if _refine_terrain(project, state):
+                say("geosp: terrain slope re-estimated with the fitted sources removed; "
+                    "reduce, grid, detect and fit again ...")
+                run_reduce(project, state)
+                run_grid(project, state)
+                run_detect(project, state, progress=_progress(progress, "detect"))
+                run_fit(project, state, workers=workers, scheduler=scheduler, progress=_progress(progress, "fit"))
+                state.reduction.terrain.update(state.terrain_first_pass)
     return state
+
+
+def _refine_terrain(project, state):
+    """
+    Second pass of the terrain estimate (``[reduce] terrain_refine``).
+
+    When the slope was estimated and fitted sources exist, re-estimate it from
+    every station with the sources removed. If the new slope falls outside
+    the first estimate's 95 % interval, fix it in the project's [reduce]
+    options for this run and return True (the caller re-runs the stages).
+    """
+    from .physics.forward import sources_sp
+    from .reduce import refine_terrain_slope
+
+    terrain = state.reduction.terrain
+    options = project.stages["reduce"]
+    if not (terrain.get("applied") and terrain.get("refine") and state.fits is not None and state.fits.sources):
+        return False
+    st = state.reduction.stations
+    from .interpretation import joint_strengths
+
+    source_mv = sources_sp((st.easting, st.northing), [joint_strengths(r) for r in state.fits.sources])
+    refined = refine_terrain_slope(state.reduction, source_mv)
+    if refined is None or terrain["ci_lo"] <= refined["slope_mv_per_m"] <= terrain["ci_hi"]:
+        return False
+    state.terrain_first_pass = {
+        "first_pass_slope_mv_per_m": terrain["slope_mv_per_m"], "first_pass_ci": (terrain["ci_lo"], terrain["ci_hi"]),
+        "ci_lo": refined["ci_lo"], "ci_hi": refined["ci_hi"], "n_used": refined["n_used"],
+        "method": "Theil-Sen over all stations with the fitted sources removed (second pass), 95 % interval",
+    }
+    options["terrain_slope_mv_per_m"] = refined["slope_mv_per_m"]
+    state.warnings.append(
+        f"Terrain slope re-estimated with the fitted sources removed: {refined['slope_mv_per_m']:.3f} mV/m "
+        f"(first pass {terrain['slope_mv_per_m']:.3f} mV/m away from the faults); the stages were run again.")
+    return True
 
 
 def _missing(state, stage):

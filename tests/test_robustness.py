@@ -569,6 +569,13 @@ def c_run_two_stations_only(tmp):
     return Case(project_with(tmp, frame=frame, fault=fault, extra=FAST), ("stations",))
 
 
+def c_station_far_from_the_others(tmp):
+    frame, fault = small_survey()
+    frame.loc[4, "E"] = 1.0e9  # a typing error of the easting
+    return Case(project_with(tmp, "csv_xy", frame=frame, fault=fault),
+                ("stations.csv", "1 station(s) lie more than 200 km", "L01-004 (line 6", "coordinates"))
+
+
 def c_value_scale_auto(tmp):
     p = project_with(tmp)
     edit(p, 'elevation = "ELEV"', 'elevation = "ELEV"\nvalue_scale = "auto"')
@@ -619,6 +626,44 @@ def x_grid_negative_seed(tmp):
 def x_fit_mcmc_zero_steps(tmp):
     return Case(project_with(tmp, extra=FAST.replace('uncertainty = "jacobian"', 'uncertainty = "mcmc"\nmcmc_steps = 0')),
                 ("mcmc_steps",))
+
+
+def test_grid_with_a_far_station_fails_cleanly():
+    """
+    A station 10^6 km away (a coordinate typo that a caller skipped the load-time check
+    for) must give an InputError from the gridding, not an attempt to allocate hundreds of GB.
+    """
+    from geosp.errors import GeospError
+    from geosp.grid import grid_stations
+    from geosp.models import Stations
+
+    frame, _ = small_survey()
+    e = frame.E.to_numpy().copy()
+    e[4] = 1.0e9
+    stations = Stations(station_id=frame.STN.to_numpy(), easting=e, northing=frame.N.to_numpy(),
+                        upward=np.full(len(e), np.nan), sp_mv=frame.SP_mV.to_numpy(), crs=UTM,
+                        line_id=frame.LINE.to_numpy())
+    import resource
+
+    if not Path("/proc/self/status").exists():
+        pytest.skip("needs Linux /proc to cap the address space safely")
+    # Cap the address space (current size + 8 GB) so a runaway allocation fails at once
+    # even where the kernel overcommits memory.
+    size = next(int(line.split()[1]) * 1024 for line in Path("/proc/self/status").read_text().splitlines()
+                if line.startswith("VmSize:"))
+    soft, hard = resource.getrlimit(resource.RLIMIT_AS)
+    resource.setrlimit(resource.RLIMIT_AS, (size + 8 * 2**30, hard))
+    try:
+        with pytest.raises(GeospError):
+            grid_stations(stations)
+    finally:
+        resource.setrlimit(resource.RLIMIT_AS, (soft, hard))
+
+
+test_grid_with_a_far_station_fails_cleanly = pytest.mark.xfail(
+    strict=True, raises=MemoryError,
+    reason="grid.py:586 _cross_validate -> grid.py:123 allocates an array of 4e10 int64 (MemoryError) for a "
+           "station 1e9 m away before max_nodes is checked")(test_grid_with_a_far_station_fails_cleanly)
 
 
 XFAIL_REASONS = {
