@@ -181,14 +181,21 @@ def c_shp_truncated(tmp):
     shp = p.parent / "stations.shp"
     data = shp.read_bytes()
     shp.write_bytes(data[: len(data) // 3])
-    return Case(p, ("stations.shp", "empty geometry at feature"))
+    return Case(p, ("stations.shp", "truncated", f"has {len(data) // 3} bytes of the {len(data)}", "Copy the file"))
 
 
 def c_shp_header_only(tmp):
     p = project_with(tmp)
     shp = p.parent / "stations.shp"
     shp.write_bytes(shp.read_bytes()[:50])
-    return Case(p, ("stations.shp",))
+    return Case(p, ("stations.shp", "truncated", "has 50 bytes"))
+
+
+def c_shx_truncated(tmp):
+    p = project_with(tmp)
+    shx = p.parent / "stations.shx"
+    shx.write_bytes(shx.read_bytes()[:-40])
+    return Case(p, ("stations.shp", "truncated", "stations.shx"))
 
 
 def c_gpkg_truncated(tmp):

@@ -38,6 +38,7 @@ def read_vector(path, *, layer="", what="file"):
                 raise InputError(path, f"the Shapefile is incomplete: {path.with_suffix(part).name} is missing.",
                                  "Copy all the Shapefile's parts (.shp, .shx, .dbf, .prj) into one folder, "
                                  "or export the layer as a GeoPackage.")
+        _check_shapefile_length(path)
     source = _gdal_path(path)
     try:
         layers = pyogrio.list_layers(source)
@@ -63,6 +64,21 @@ def read_vector(path, *, layer="", what="file"):
     if len(frame) == 0:
         raise InputError(path, f"layer '{layer}' is empty.", "Export a layer that has features.")
     return frame, layer
+
+
+def _check_shapefile_length(path):
+    """The .shp and .shx headers state their file length (16-bit words at byte 24, big-endian)."""
+    for part in (path, path.with_suffix(".shx")):
+        if not part.exists():
+            continue
+        size = part.stat().st_size
+        with open(part, "rb") as handle:
+            header = handle.read(28)
+        stated = 2 * int.from_bytes(header[24:28], "big") if len(header) == 28 else None
+        if size < 100 or (stated is not None and size < stated):
+            raise InputError(path, f"the Shapefile is truncated: {part.name} has {size} bytes"
+                             + (f" of the {stated} its header states." if stated else "."),
+                             "Copy the file again (the copy or download stopped early) or re-export it.")
 
 
 def _short(err):
