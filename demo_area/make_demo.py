@@ -567,8 +567,16 @@ dip_dir_deg = "dip_dir"
 [dem]
 path = "dem.tif"
 
-# [detect]   # options: see docs (segment length, corridor, templates, false-alarm rate)
-# [fit]      # options: see docs (models, bounds, uncertainty method, seed, workers)
+[reduce]
+mode = "leapfrog"             # the crew stepped the rear electrode ahead each reading
+
+[detect]
+# The expected tops are shallow (100-300 m), and the survey is small for the
+# default corridor of 3 x 400 m: templates to 200 m give a 600 m corridor, so
+# decoys can be placed away from the mapped faults.
+template_top_depths_m = [50.0, 100.0, 200.0]
+
+# [fit]      # options: see docs/project-file.md (models, bounds, uncertainty, seed, workers)
 '''
 
 
@@ -597,8 +605,13 @@ dip_dir_deg = "dip_dir"
 [dem]
 path = "dem.tif"
 
-# [detect]   # options: see docs (segment length, corridor, templates, false-alarm rate)
-# [fit]      # options: see docs (models, bounds, uncertainty method, seed, workers)
+[detect]
+# The expected tops are shallow (100-300 m), and the survey is small for the
+# default corridor of 3 x 400 m: templates to 200 m give a 600 m corridor, so
+# decoys can be placed away from the mapped faults.
+template_top_depths_m = [50.0, 100.0, 200.0]
+
+# [fit]      # options: see docs/project-file.md (models, bounds, uncertainty, seed, workers)
 '''
 
 

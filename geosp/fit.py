@@ -1167,18 +1167,13 @@ def _joint_solve(stations, fits, accepted, detections):
     else:
         coef = np.zeros(design.shape[1])
     model_mv = design @ coef
+    # The reported strengths stay those of each segment's own fit (with their profile-likelihood
+    # ranges); the joint values, which share one survey-wide regional, serve the model raster.
     for row, value in zip(rows, coef[:len(rows)]):
         if row["model"] == "pole_pair":
-            row["pole_k_mv_m_segment"] = row["pole_k_mv_m"]
-            row["pole_k_mv_m"] = float(value)
-            continue
-        old = row["jump_mv"]
-        row["jump_segment_mv"] = old
-        shift = float(value) - old
-        row["jump_mv"] = float(value)
-        row["jump_lo_mv"] += shift
-        row["jump_hi_mv"] += shift
-        row["jump_height_mv_m"] = float(value) * (row["bottom_depth_m"] - row["top_depth_m"])
+            row["pole_k_joint_mv_m"] = float(value)
+        else:
+            row["jump_joint_mv"] = float(value)
     regional = {"c0_mv": float(coef[-3]), "east_mv_per_m": float(coef[-2] / _REGIONAL_SCALE),
                 "north_mv_per_m": float(coef[-1] / _REGIONAL_SCALE),
                 "east0_m": e0, "north0_m": n0}

@@ -44,7 +44,7 @@ def rasters(state):
         ee, nn = np.meshgrid(grid.easting, grid.northing)
         mask = np.isfinite(grid.values)
         model = np.full(grid.values.shape, np.nan)
-        sources = [dict(r) for r in state.fits.sources]
+        sources = [joint_strengths(r) for r in state.fits.sources]
         if mask.any():
             values = np.zeros(mask.sum())
             if sources:
@@ -57,6 +57,16 @@ def rasters(state):
         out["sp_residual.tif"] = Raster(residual.easting, residual.northing, residual.values, grid.crs, "mV",
                                         {**base_tags, "content": "observed minus modelled SP, gridded from stations"})
     return out
+
+
+def joint_strengths(row):
+    """A source row with the strength of the final joint solve (used by the model raster)."""
+    row = dict(row)
+    if "jump_joint_mv" in row:
+        row["jump_mv"] = row["jump_joint_mv"]
+    if "pole_k_joint_mv_m" in row:
+        row["pole_k_mv_m"] = row["pole_k_joint_mv_m"]
+    return row
 
 
 def _regional(regional, easting, northing):

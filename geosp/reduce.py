@@ -76,6 +76,8 @@ def reduce_survey(
     terrain="auto",
     terrain_corridor_m=300.0,
     terrain_min_stations=10,
+    terrain_slope_mv_per_m="auto",
+    terrain_refine=True,
     outlier_window=7,
     outlier_mads=4.0,
     outlier_weight=0.25,
@@ -128,6 +130,16 @@ def reduce_survey(
         slope estimate (upflow anomalies often sit under highs). Default 300.
     terrain_min_stations : int, optional
         Minimum number of stations for the slope estimate. Default 10.
+    terrain_slope_mv_per_m : "auto" or float, optional
+        SP change per metre of elevation, mV/m. ``"auto"`` estimates it
+        (Theil-Sen) from the stations away from the faults; a number is used
+        as given. Default "auto".
+    terrain_refine : bool, optional
+        With an estimated slope, let the pipeline re-estimate it once after
+        the fit from all stations with the fitted sources removed
+        (:func:`refine_terrain_slope`) and re-run the later stages: anomalies
+        reach beyond any fault corridor, and upflows often sit under highs,
+        so the first estimate is biased where they do. Default True.
     outlier_window : int, optional
         Running-median window along each line, stations (5-7 is common
         practice). Default 7.
@@ -197,6 +209,11 @@ def reduce_survey(
     _check_options(mode, reading_sigma_mv, station_sigma_mv, blunder_sigma, terrain,
                    terrain_corridor_m, terrain_min_stations, outlier_window, outlier_mads,
                    outlier_weight)
+    if terrain_slope_mv_per_m != "auto" and not isinstance(terrain_slope_mv_per_m, (int, float)):
+        from .errors import OptionError
+
+        raise OptionError("[reduce]", f"terrain_slope_mv_per_m = {terrain_slope_mv_per_m!r} must be "
+                          "\"auto\" or a number in mV/m.", "For example terrain_slope_mv_per_m = -0.5.")
     notes = _Notes()
     readings = survey.readings
     gradient = readings is not None and len(readings.dv_mv) > 0
@@ -224,7 +241,9 @@ def reduce_survey(
     use_terrain = (survey.dem is not None) if terrain == "auto" else bool(terrain)
     terrain_mv, terrain_info = _terrain_effect(
         value, st, survey.faults, flag, notes, apply=use_terrain,
-        corridor_m=terrain_corridor_m, min_stations=terrain_min_stations)
+        corridor_m=terrain_corridor_m, min_stations=terrain_min_stations,
+        slope=None if terrain_slope_mv_per_m == "auto" else float(terrain_slope_mv_per_m))
+    terrain_info["refine"] = bool(terrain_refine) and terrain_slope_mv_per_m == "auto"
 
     sigma = np.where(np.isfinite(value), np.hypot(net_sigma, station_sigma_mv), np.nan)
     st = st.replace(sp_mv=value - terrain_mv, terrain_mv=terrain_mv, flag=flag,
@@ -782,7 +801,36 @@ def _flag_outliers(value, st, lines, flag, weight, notes, *, window, mads, floor
                   f"{format_rows(st.station_id[out].tolist())}.")
 
 
-def _terrain_effect(value, st, faults, flag, notes, *, apply, corridor_m, min_stations):
+def refine_terrain_slope(reduction, source_mv):
+    """
+    Re-estimate the terrain slope with the fitted sources removed.
+
+    Theil-Sen slope of (SP before the terrain correction − fitted sources)
+    against elevation over every unflagged station with a known elevation.
+
+    Parameters
+    ----------
+    reduction : Reduction
+        A reduction whose terrain correction was estimated.
+    source_mv : array
+        Modelled SP of the fitted sources at every station, mV.
+
+    Returns
+    -------
+    dict or None
+        ``slope_mv_per_m``, ``ci_lo``, ``ci_hi`` (95 %), ``n_used``; None when
+        too few stations have an elevation.
+    """
+    st = reduction.stations
+    value = st.sp_mv + st.terrain_mv - np.asarray(source_mv, dtype=float)
+    use = np.isfinite(value) & np.isfinite(st.upward) & (st.flag == "")
+    if use.sum() < 10:
+        return None
+    slope, _, lo, hi = stats.theilslopes(value[use], st.upward[use], alpha=0.95)
+    return {"slope_mv_per_m": float(slope), "ci_lo": float(lo), "ci_hi": float(hi), "n_used": int(use.sum())}
+
+
+def _terrain_effect(value, st, faults, flag, notes, *, apply, corridor_m, min_stations, slope=None):
     info = {"applied": False, "slope_mv_per_m": np.nan, "ci_lo": np.nan, "ci_hi": np.nan,
             "n_used": 0, "n_near_faults": 0, "reference_elevation_m": np.nan,
             "corridor_m": float(corridor_m), "method": "Theil-Sen, 95 % interval"}
@@ -790,6 +838,12 @@ def _terrain_effect(value, st, faults, flag, notes, *, apply, corridor_m, min_st
     if not apply:
         return terrain_mv, info
     elev = st.upward
+    if slope is not None:
+        ref_elev = float(np.median(elev[np.isfinite(elev)])) if np.isfinite(elev).any() else 0.0
+        terrain_mv = np.where(np.isfinite(elev), slope * (elev - ref_elev), 0.0)
+        info.update(applied=True, slope_mv_per_m=float(slope), reference_elevation_m=ref_elev,
+                    method="slope given in the project file")
+        return terrain_mv, info
     known = np.isfinite(elev) & np.isfinite(value)
     near = np.zeros(len(value), bool)
     lines = [np.asarray(fl.coords, float) for fl in faults if len(fl.coords) >= 2]
