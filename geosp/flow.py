@@ -405,7 +405,8 @@ def compute_darcy_flux(mesh, mobility, pressure):
 
 
 def solve_heat(mesh, conductivity, *, source=None, fixed_mask=None, fixed_values=0.0,
-               darcy_flux=None, heat_capacity_j_m3_k=4.18e6, solver="auto"):
+               darcy_flux=None, inflow_temperature_k=0.0, heat_capacity_j_m3_k=4.18e6,
+               solver="auto"):
     """
     Steady heat transport: ∇·(λ∇T) − ρ_f c_f q·∇T = −H.
 
@@ -422,6 +423,10 @@ def solve_heat(mesh, conductivity, *, source=None, fixed_mask=None, fixed_values
     darcy_flux : tuple or None
         Face fluxes from :func:`compute_darcy_flux` for advection (first-order
         upwind); None for conduction only.
+    inflow_temperature_k : float or array
+        Temperature (K above the surface) of fluid entering the mesh where
+        the Darcy flux diverges (fluid sources and fixed-pressure cells),
+        per cell or one value. Default 0.
     heat_capacity_j_m3_k : float
         Volumetric heat capacity of the fluid ρ_f c_f (J/(m³·K)).
     solver : str
@@ -452,9 +457,26 @@ def solve_heat(mesh, conductivity, *, source=None, fixed_mask=None, fixed_values
             rows.append(i)
             cols.append(i)
             vals.append(np.maximum(-f, 0.0) * heat_capacity_j_m3_k)  # inflow at T = 0
+        # Where fluid enters (net outflow Q > 0 of a cell: a source or a fixed pressure),
+        # it arrives at the inflow temperature: ρc·Q·(T_i − T_in), so that
+        # ∇·(λ∇T) − ρc∇·(qT) = −H − ρc·Q·T_in (energy is conserved; without this term
+        # fluid would be created at the local temperature and heat would run away).
+        entering = np.zeros(mesh.n_cells)
+        for i, j, f in flux_in:
+            np.add.at(entering, i, f)
+            np.add.at(entering, j, -f)
+        for side, (i, f) in flux_b.items():
+            np.add.at(entering, i, f)
+        entering = np.maximum(entering, 0.0) * heat_capacity_j_m3_k
+        rows.append(np.arange(mesh.n_cells))
+        cols.append(np.arange(mesh.n_cells))
+        vals.append(entering)
         rows, cols, vals = (np.concatenate(v) for v in (rows, cols, vals))
         matrix = matrix + sparse.csr_matrix((vals, (rows, cols)), shape=matrix.shape)
     rhs = np.zeros(mesh.n_cells) if source is None else np.asarray(source, float).reshape(-1)
+    if darcy_flux is not None:
+        inflow = np.broadcast_to(np.asarray(inflow_temperature_k, float), mesh.shape)
+        rhs = rhs + entering * inflow.reshape(-1)
     t = _solve_with_fixed(matrix, rhs, fixed_mask, fixed_values, symmetric=symmetric,
                           ndim=mesh.ndim, solver=solver)
     return t.reshape(mesh.shape)
@@ -711,11 +733,18 @@ def run_flow_model(model, *, stations=None, solver="auto"):
         sources = [s for s in model.sources if s.equation == "heat"]
         mask, values = _fixed(mesh, model, "heat")
         flux = None
+        inflow = 0.0
         if model.heat_advection and pressure is not None:
             flux = compute_darcy_flux(mesh, props["mobility_m2_pa_s"], pressure)
+            fluid = [s for s in model.sources if s.equation == "pressure"]
+            rate = _source_vector(mesh, fluid, where)
+            warm = _source_vector(mesh, [replace(s, strength=s.strength * s.fluid_temperature_k)
+                                         for s in fluid], where)
+            inflow = np.divide(warm, rate, out=np.zeros_like(rate), where=rate > 0)
+            inflow = inflow.reshape(mesh.shape)
         temperature = solve_heat(mesh, props["thermal_conductivity_w_m_k"],
                                  source=_source_vector(mesh, sources, where), fixed_mask=mask,
-                                 fixed_values=values, darcy_flux=flux,
+                                 fixed_values=values, darcy_flux=flux, inflow_temperature_k=inflow,
                                  heat_capacity_j_m3_k=model.fluid_heat_capacity_j_m3_k,
                                  solver=solver)
     potential, surface = solve_sp(mesh, props["sigma_s_m"], c_p=props["c_p_v_pa"],

@@ -334,6 +334,7 @@ class FlowSource:
     kind: str
     geometry: np.ndarray
     strength: float
+    fluid_temperature_k: float = 0.0  # fluid sources: temperature of the entering fluid
 
 
 @dataclass(frozen=True)

@@ -229,26 +229,39 @@ def test_heat_conduction_matches_image_solution_and_advection_lifts_plume():
     reference = line_source_pressure(x, z, 0.0, 2.0, q=10.0, mobility=2.5)
     compare = (np.hypot(x, z - 2.0) > 0.3) & (np.abs(x) < 5) & (z < 5)
     assert np.abs(t - reference)[compare].max() < 0.01 * np.abs(reference[compare]).max()
-    # Upflow: fluid injected below escapes through the surface (P = 0 there) and carries
-    # heat up, so the temperature above the heat source rises.
+    # Advection direction: in a uniform Darcy flow along +x (Péclet number
+    # ρc·q·L/λ ≈ 3.3 at L = 2 m) heat is swept downstream, so T two metres downstream of
+    # the source is far above T two metres upstream, while conduction alone is nearly
+    # symmetric (physical property of upwind transport; no closed form used).
+    interior, boundary = flow._faces(mesh, 1.0)
+    area = np.broadcast_to(flow._along(mesh.widths[1], 1, 2), mesh.shape)[:-1, :].reshape(-1)
+    uniform = ([(interior[0][0], interior[0][1], 1e-6 * area),
+                (interior[1][0], interior[1][1], np.zeros_like(interior[1][2]))],
+               {side: (i, np.zeros_like(t_b)) for side, (i, t_b) in boundary.items()})
+    t_flow = flow.solve_heat(mesh, 2.5, source=heat, darcy_flux=uniform)
+    depth = np.argmin(np.abs(mesh.centres[1] - 2.0))
+    up, down = (np.argmin(np.abs(mesh.centres[0] - v)) for v in (-2.0, 2.0))
+    assert t_flow[down, depth] > 5 * t_flow[up, depth]
+    assert abs(t[down, depth] / t[up, depth] - 1) < 0.1
+    # Divergent flow: fluid injected below the heat source escapes through the surface.
     fluid = flow._source_vector(mesh, [FlowSource("q", "pressure", "point",
                                                   np.array([0.0, 3.0]), 1e-6)])
     p = flow.solve_pressure(mesh, 1e-9, source=fluid)
     flux = flow.compute_darcy_flux(mesh, 1e-9, p)
-    t_adv = flow.solve_heat(mesh, 2.5, source=heat, darcy_flux=flux)
-    column = np.argmin(np.abs(mesh.centres[0]))
-    above = np.argmin(np.abs(mesh.centres[1] - 1.0))
-    assert t_adv[column, above] > 1.2 * t[column, above]
     # Global energy balance (first law): conduction plus advection out through the
-    # boundaries equals the heat input plus the enthalpy ρc·T·Q of the injected fluid
-    # (the non-conservative q·∇T form adds fluid at the local temperature). Round-off.
+    # boundaries equals the heat input plus the enthalpy ρc·T_in·Q of the injected fluid.
+    # Round-off (the pressure solve is exact to it too).
     _, boundary = flow._faces(mesh, 2.5)
     _, flux_b = flux
-    flat = t_adv.reshape(-1)
-    out = sum((t_b * flat[i]).sum() + (4.18e6 * np.maximum(flux_b[side][1], 0) * flat[i]).sum()
-              for side, (i, t_b) in boundary.items())
-    expected = heat.sum() + 4.18e6 * (flat * fluid).sum()
-    assert out == pytest.approx(expected, rel=1e-8)
+    for t_in in (0.0, 40.0):
+        t_adv = flow.solve_heat(mesh, 2.5, source=heat, darcy_flux=flux,
+                                inflow_temperature_k=t_in)
+        flat = t_adv.reshape(-1)
+        out = sum((t_b * flat[i]).sum()
+                  + (4.18e6 * np.maximum(flux_b[side][1], 0) * flat[i]).sum()
+                  for side, (i, t_b) in boundary.items())
+        expected = heat.sum() + 4.18e6 * t_in * fluid.sum()
+        assert out == pytest.approx(expected, rel=1e-8)
 
 
 def _model(**kwargs):
@@ -281,6 +294,26 @@ def test_run_flow_model_predicts_stations_and_misfit():
     # relative to far away; with a fault-zone contrast the anomaly stays of tens of mV.
     assert result.profile_mv.max() > 0.0
     assert result.pressure_pa.max() > 0 and result.temperature_k is None
+
+
+def test_advected_temperature_obeys_maximum_principle():
+    # Reference: maximum principle for steady advection-diffusion without heat sources
+    # (upwind FV keeps it discretely): T stays between the boundary value 0 and the
+    # largest prescribed temperature (fixed region 150 K, entering fluid 120 K). Fluid
+    # created at the local temperature instead would let T run away above both.
+    hot = FlowFixed("hot", "heat", np.array([[150, 850], [250, 850], [250, 950], [150, 950]]),
+                    150.0)
+    inflow = FlowSource("upflow", "pressure", "point", np.array([250.0, 800.0]), 1e-4,
+                        fluid_temperature_k=120.0)
+    model = _model(sources=(inflow,), fixed=(hot,), heat_advection=True)
+    result = flow.run_flow_model(model)
+    conduction = flow.run_flow_model(_model(sources=(inflow,), fixed=(hot,)))
+    assert result.temperature_k.min() >= -1e-9
+    assert result.temperature_k.max() <= 150.0 + 1e-9
+    # The rising hot fluid warms the shallow ground above it compared with conduction.
+    column = np.argmin(np.abs(result.mesh.centres[0] - 0.0))
+    shallow = np.argmin(np.abs(result.mesh.centres[1] - 100.0))
+    assert result.temperature_k[column, shallow] > conduction.temperature_k[column, shallow]
 
 
 def test_run_flow_model_fixed_temperature_and_errors():

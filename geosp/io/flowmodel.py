@@ -32,7 +32,8 @@ PROPERTY_KEYS = ("sigma_s_m", "c_p_v_pa", "c_t_v_k", "hydraulic_conductivity_m_s
                  "permeability_m2", "viscosity_pa_s", "thermal_conductivity_w_m_k")
 SHAPE_KEYS = ("polygon", "box")
 REGION_KEYS = ("name",) + SHAPE_KEYS + PROPERTY_KEYS
-SOURCE_KEYS = ("name", "point", "line", "polygon", "box", "rate_m3_s", "power_w")
+SOURCE_KEYS = ("name", "point", "line", "polygon", "box", "rate_m3_s", "power_w",
+               "fluid_temperature_k")
 FIXED_KEYS = ("name",) + SHAPE_KEYS + ("pressure_pa", "temperature_k")
 HEAT_KEYS = ("advection", "fluid_heat_capacity_j_m3_k")
 PROFILE_KEYS = ("x_m", "y_m", "spacing_m", "origin_xy", "azimuth_deg", "crs")
@@ -275,11 +276,15 @@ def read_flow_model(path):
             geometry = check.points(table["line"], "line", where, dims=ndim, count=2)
         else:
             geometry = _shape(check, table, where, ndim)
+        fluid_t = check.number(table, "fluid_temperature_k", where, default=0.0)
+        if "fluid_temperature_k" in table and strengths[0] != "rate_m3_s":
+            check.add(where, "'fluid_temperature_k' belongs to fluid sources.",
+                      "Use it with rate_m3_s, or delete it.")
         if geometry is None or strength is None:
             continue
         equation = "pressure" if strengths[0] == "rate_m3_s" else "heat"
         sources.append(FlowSource(name, equation, "region" if kind in SHAPE_KEYS else kind,
-                                  geometry, strength))
+                                  geometry, strength, fluid_temperature_k=fluid_t or 0.0))
 
     fixed = []
     for k, table in enumerate(_table_list(check, data, "fixed")):

@@ -146,3 +146,11 @@ def test_georeferenced_profile_gpkg(tmp_path):
     npt.assert_allclose(frame.geometry.x, 1000.0 + result.profile_x_m, atol=1e-6)
     npt.assert_allclose(frame.geometry.y, 2000.0, atol=1e-6)
     assert frame.crs.to_epsg() == 32611
+
+
+def test_fluid_temperature_only_on_fluid_sources(tmp_path):
+    text = MINIMAL.replace("rate_m3_s = 1e-5", "rate_m3_s = 1e-5\nfluid_temperature_k = 150.0")
+    assert read_flow_model(write(tmp_path, text)).sources[0].fluid_temperature_k == 150.0
+    text = MINIMAL.replace("rate_m3_s = 1e-5", "power_w = 1e3\nfluid_temperature_k = 150.0")
+    with pytest.raises(InputError, match="'fluid_temperature_k' belongs to fluid sources"):
+        read_flow_model(write(tmp_path, text))
