@@ -19,6 +19,7 @@ examples:
   geosp fit survey.toml --out results --workers 2
   geosp run survey.toml --scheduler tcp://10.0.0.5:8786   fan fits out over a Dask cluster
   geosp forward results/interpretation.gpkg stations.csv --out predicted.gpkg
+  geosp section upflow.toml --stations observed.csv --out section_out
 
 exit codes: 0 success, 2 bad input or options, 1 internal error (a bug)
 """
@@ -64,6 +65,13 @@ def build_parser():
                    "as the sources) or lon,lat")
     p.add_argument("--out", type=Path, default=None, help="output .gpkg or .csv (default: print a table)")
     p.add_argument("--layer", default="sources", help="sources layer name (default: sources)")
+
+    p = sub.add_parser("section", parents=[common],
+                       help="predicted SP of a heat or pressure model in a cross-section (or 3-D box model)")
+    p.add_argument("model", type=Path, help="model description (TOML; see docs/flow-modelling.md)")
+    p.add_argument("--stations", type=Path, default=None,
+                   help="observed SP along the profile: CSV with columns x_m, sp_mv")
+    p.add_argument("--out", type=Path, default=Path("section_out"), help="output folder (default: ./section_out)")
 
     p = sub.add_parser("init", parents=[common], help="write a commented project-file template")
     p.add_argument("project", type=Path, nargs="?", default=Path("project.toml"))
@@ -122,6 +130,8 @@ def _dispatch(args, say, progress):
     elif args.command == "forward":
         out, table = pipeline.forward(args.sources, args.stations, out=args.out, layer=args.layer)
         say(f"geosp: wrote {out}" if out else table)
+    elif args.command == "section":
+        say(pipeline.format_section(*pipeline.section(args.model, stations=args.stations, out=args.out)))
     elif args.command == "demo":
         out, state = pipeline.demo(args.out, workers=args.workers, progress=progress, say=say)
         say(pipeline.format_run(out, state))

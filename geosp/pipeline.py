@@ -685,3 +685,52 @@ def forward(sources_path, stations_path, *, out=None, layer="sources"):
     if out is None:
         return None, stations.drop(columns="geometry").to_string(index=False, max_rows=60)
     return write_forward_output(stations, Path(out)), ""
+
+
+def section(model_path, *, stations=None, out):
+    """
+    Solve a primary-flow model (heat or pressure, then SP) and write its outputs.
+
+    Writes ``section_profile.csv`` (and ``section_profile.gpkg`` when the
+    model's [profile] is georeferenced) and ``section.png`` in ``out``.
+
+    Returns ``(out, result, written)``.
+    """
+    from pathlib import Path
+
+    from .figures.flow import section_figure
+    from .flow import run_flow_model
+    from .io.atomic import atomic_path, ensure_not_input
+    from .io.flowmodel import read_flow_model, read_section_stations, write_flow_profile
+
+    model = read_flow_model(model_path)
+    observed = read_section_stations(stations) if stations else None
+    out = Path(out)
+    inputs = [Path(model_path)] + ([Path(stations)] if stations else [])
+    ensure_not_input(out, inputs, output_names=("section_profile.csv", "section_profile.gpkg", "section.png"))
+    result = run_flow_model(model, stations=observed)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise InputError(out, f"cannot be used as the output folder ({err.strerror}).",
+                         "Choose a folder name that is not a file.") from None
+    written = [write_flow_profile(result, out / "section_profile.csv")]
+    if model.profile_origin_xy is not None and model.crs:
+        written.append(write_flow_profile(result, out / "section_profile.gpkg"))
+    figure = section_figure(result)
+    with atomic_path(out / "section.png") as tmp:
+        figure.savefig(tmp, dpi=150, format="png")
+    written.append(out / "section.png")
+    return out, result, written
+
+
+def format_section(out, result, written):
+    """Terminal summary of :func:`section`."""
+    rows = [f"Section       {getattr(result.model, 'title', '') or 'model'} solved in {result.seconds:.1f} s",
+            f"Surface SP    {float(min(result.profile_mv)):.1f} to {float(max(result.profile_mv)):.1f} mV "
+            "along the profile"]
+    if result.observed_mv is not None:
+        rows.append(f"Misfit        RMS {result.rms_mv:.1f} mV; after a best constant offset "
+                    f"({result.offset_mv:+.1f} mV) {result.rms_offset_mv:.1f} mV")
+    rows.append("Wrote         " + ", ".join(str(p) for p in written))
+    return "\n".join(rows)

@@ -216,3 +216,29 @@ def test_real_exit_code_and_no_traceback_in_a_subprocess(tmp_path):
     proc = subprocess.run([sys.executable, "-m", "geosp.cli", "check", str(project)], capture_output=True, text=True)
     assert proc.returncode == 2
     assert "stations.shx is missing" in proc.stderr and "Traceback" not in proc.stderr
+
+
+def test_section_command_runs_the_example_model(tmp_path, capsys):
+    # The invented example in docs/examples; the solver itself is checked against closed forms
+    # in tests/test_flow.py. Here: the command writes its three outputs and reports the misfit.
+    from pathlib import Path
+
+    examples = Path(__file__).resolve().parents[1] / "docs" / "examples"
+    code, out, err = run(capsys, "section", examples / "upflow_section.toml", "--stations",
+                         examples / "upflow_stations.csv", "--out", tmp_path / "sec")
+    assert code == 0, err
+    assert {p.name for p in (tmp_path / "sec").iterdir()} >= {"section_profile.csv", "section.png"}
+    assert "Misfit" in out and "RMS" in out
+    import pandas as pd
+
+    profile = pd.read_csv(tmp_path / "sec" / "section_profile.csv")
+    stations = profile[profile["point"] == "station"]
+    assert (profile["point"] == "profile").sum() > 10 and profile["model_mv"].notna().all()
+    assert len(stations) > 0 and stations["residual_mv"].notna().all()
+
+
+def test_section_command_refuses_a_bad_model(tmp_path, capsys):
+    bad = tmp_path / "m.toml"
+    bad.write_text('[mesh]\nx_m = [0, 100]\ndepth_m = 50\ncell_m = 5\n[background]\nsigma_sm = 0.01\n')
+    code, _, err = run(capsys, "section", bad, "--out", tmp_path / "o")
+    assert code == 2 and "m.toml" in err and "Traceback" not in err
