@@ -673,14 +673,6 @@ test_grid_with_a_far_station_fails_cleanly = pytest.mark.xfail(
            "station 1e9 m away before max_nodes is checked")(test_grid_with_a_far_station_fails_cleanly)
 
 
-XFAIL_REASONS = {
-    "x_detect_template_depth_text": "detect.py:135 detect_dipoles: float('a') ValueError for "
-                                    "template_top_depths_m = [\"a\"] (exit 1, not 2)",
-    "x_fit_dip_range_one_value": "fit.py:402 _check_options unpacks dip_range_deg = [30]: ValueError (exit 1)",
-    "x_fit_negative_seed": "fit.py:626 fit_segment -> parallel.item_seed: SeedSequence ValueError for [fit] seed = -1",
-    "x_grid_negative_seed": "grid.py:551 _fold_ids: default_rng ValueError for [grid] seed = -1 (exit 1)",
-    "x_fit_mcmc_zero_steps": "fit.py:906 _mcmc_interval: emcee AttributeError for mcmc_steps = 0 (exit 1)",
-}
 
 
 # Work-arounds: these must succeed (``geosp check``), with the fragment in the summary.
@@ -739,8 +731,8 @@ def ok_line_with_one_station(tmp):
 
 
 CASES = [v for k, v in sorted(globals().items()) if k.startswith("c_")]
-CASES += [pytest.param(v, marks=pytest.mark.xfail(strict=True, reason=XFAIL_REASONS[k]), id=k[2:])
-          for k, v in sorted(globals().items()) if k.startswith("x_")]
+# These were failures of the stage code (exit 1); the project loader now refuses them with exit 2.
+CASES += [pytest.param(v, id=k[2:]) for k, v in sorted(globals().items()) if k.startswith("x_")]
 OK_CASES = [v for k, v in sorted(globals().items()) if k.startswith("ok_")]
 
 

@@ -86,11 +86,27 @@ def _type_ok(value, default, *, auto=True):
     if isinstance(default, (int, float)):
         return (isinstance(value, (int, float)) and not isinstance(value, bool)) or (auto and value == "auto")
     if isinstance(default, (list, tuple)):
-        return isinstance(value, list)
+        if not isinstance(value, list):
+            return False
+        if default and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in default):
+            # A list of numbers stays a list of numbers.
+            return all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
+        return True
     if isinstance(default, str):
         # String defaults such as "auto" or "cv" stand for a choice; a number or a list may replace them.
         return isinstance(value, (str, int, float, list)) and not isinstance(value, bool)
     return True
+
+
+def _shape_problem(key, value):
+    """Rules that follow from an option's name: seeds, counts of steps, ranges (empty when fine)."""
+    if key == "seed" and not (isinstance(value, int) and not isinstance(value, bool) and value >= 0):
+        return "must be a whole number, 0 or more."
+    if key.endswith("_range_deg") and isinstance(value, list) and len(value) != 2:
+        return "must be two numbers, [lowest, highest]."
+    if key.endswith("_steps") and isinstance(value, (int, float)) and not isinstance(value, bool) and value < 1:
+        return "must be at least 1."
+    return ""
 
 
 def _describe(default):
@@ -160,6 +176,9 @@ def read_project(path, *, stage_defaults=None):
                 problems.append(OptionError(
                     path, f"[{section}] {key} = {value!r} has the wrong type.",
                     f"Give {_describe(defaults[key])}" + (f" (default {defaults[key]!r})." if defaults[key] != "" else ".")))
+            elif _shape_problem(key, value):
+                problems.append(OptionError(path, f"[{section}] {key} = {value!r} {_shape_problem(key, value)}",
+                                            f"Remove it to use the default ({defaults[key]!r})."))
             elif section == "stations" and key == "value_scale" and not (math.isfinite(value) and value != 0):
                 problems.append(OptionError(path, f"[stations] value_scale = {value!r} must be a non-zero number.",
                                             "Use 1 for millivolts (the default) or 1000 for volts."))
