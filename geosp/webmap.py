@@ -22,6 +22,7 @@ import re
 from importlib import resources
 
 import numpy as np
+from ._numbers import nice_ceiling as _nice_ceiling
 
 __all__ = ["CAUTIONS", "make_webmap", "check_offline"]
 
@@ -131,16 +132,6 @@ def _with_range(row, key, lo_key, hi_key, digits=1):
     if lo == "–" and hi == "–":
         return centre
     return f"{centre} ({lo} to {hi})"
-
-
-def _nice_ceiling(value):
-    if not np.isfinite(value) or value <= 0:
-        return 1.0
-    power = 10.0 ** np.floor(np.log10(value))
-    for step in (1.0, 2.0, 2.5, 5.0, 10.0):
-        if step * power >= value * (1 - 1e-12):
-            return float(step * power)
-    return float(10 * power)
 
 
 def _colour_scale(stations, grid):

@@ -18,6 +18,7 @@ import numpy as np
 import pyogrio
 
 from geosp.io.atomic import atomic_path
+from .._numbers import nice_ceiling as _nice_ceiling
 
 __all__ = ["write_layers", "read_layers", "station_ramp", "STYLE_TABLE"]
 
@@ -34,17 +35,6 @@ _SCORE_EDGES = [2.0, 3.0, 5.0]
 def _rgba(hex_colour, alpha=255):
     h = hex_colour.lstrip("#")
     return f"{int(h[0:2], 16)},{int(h[2:4], 16)},{int(h[4:6], 16)},{alpha}"
-
-
-def _nice_ceiling(value):
-    """Smallest 1, 2, 2.5 or 5 times a power of ten that is >= value (> 0)."""
-    if not np.isfinite(value) or value <= 0:
-        return 1.0
-    power = 10.0 ** np.floor(np.log10(value))
-    for step in (1.0, 2.0, 2.5, 5.0, 10.0):
-        if step * power >= value * (1 - 1e-12):
-            return float(step * power)
-    return float(10 * power)
 
 
 def station_ramp(values, *, n_classes=8):
