@@ -31,6 +31,7 @@ from scipy.spatial import ConvexHull, QhullError, cKDTree
 from .errors import OptionError
 from .models import Detection
 from .physics import forward
+from .segments import assign_points, corridor_distance
 
 #: Fewest owned stations for a segment to be scored (3 regional terms, one
 #: amplitude and enough residual degrees of freedom for the noise estimate).
@@ -145,7 +146,7 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
         corridor = _auto_corridor(data, depths)
     else:
         corridor = float(corridor_m)
-    owned = _owned_stations(data.easting, data.northing, segments, corridor)
+    owned = assign_points(data.easting, data.northing, segments, corridor_m=corridor)
     fault_tree = _fault_tree(segments, corridor)
     detections = []
     for j, segment in enumerate(segments):
@@ -290,35 +291,6 @@ def _fault_tree(segments, corridor):
     if not points:
         return None
     return cKDTree(np.vstack(points))
-
-
-def _corridor_distance(segment, easting, northing, corridor):
-    """Inside the extended corridor, and distance (m) to the chord."""
-    s, t = segment.to_local(easting, northing)
-    length = segment.length_m
-    inside = (np.abs(t) <= corridor) & (s >= -corridor) & (s <= length + corridor)
-    beyond = np.maximum(np.maximum(-s, s - length), 0.0)
-    return inside, np.hypot(beyond, t)
-
-
-def _owned_stations(easting, northing, segments, corridor):
-    """
-    Each station to its nearest segment chord, among the segments whose
-    extended corridor contains it (the rule of
-    :func:`geosp.segments.assign_stations`, repeated here because processing
-    steps do not import one another). Returns one sorted index array per
-    segment, into the given arrays.
-    """
-    best = np.full(easting.size, np.inf)
-    owner = np.full(easting.size, -1)
-    for j, seg in enumerate(segments):
-        inside, dist = _corridor_distance(seg, easting, northing, corridor)
-        better = inside & (dist < best)
-        best[better] = dist[better]
-        owner[better] = j
-    order = np.argsort(owner, kind="stable")
-    bounds = np.searchsorted(owner[order], np.arange(len(segments) + 1))
-    return [np.sort(order[bounds[j]:bounds[j + 1]]) for j in range(len(segments))]
 
 
 # --------------------------------------------------------------------------- templates
@@ -732,7 +704,7 @@ def _resolve_shared(detections, stations, valid_index, corridor):
     boxes = {}
     for i in detected:
         seg = detections[i].segment
-        inside, _ = _corridor_distance(seg, easting, northing, _FOOTPRINT * corridor)
+        inside, _ = corridor_distance(seg, easting, northing, _FOOTPRINT * corridor)
         sets[i] = np.flatnonzero(inside)
         c = np.asarray(seg.coords)
         boxes[i] = (c[:, 0].min() - corridor, c[:, 0].max() + corridor,

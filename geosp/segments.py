@@ -131,11 +131,15 @@ def assign_stations(stations, segments, *, corridor_m):
         station inside several corridors belongs to the segment whose chord
         is nearest; a station outside every corridor belongs to none.
     """
-    easting = np.asarray(stations.easting, dtype=float)
-    northing = np.asarray(stations.northing, dtype=float)
-    n = easting.size
-    best = np.full(n, np.inf)
-    owner = np.full(n, -1)
+    return assign_points(stations.easting, stations.northing, segments, corridor_m=corridor_m)
+
+
+def assign_points(easting, northing, segments, *, corridor_m):
+    """:func:`assign_stations` for plain coordinate arrays (m); same rule, same result."""
+    easting = np.asarray(easting, dtype=float)
+    northing = np.asarray(northing, dtype=float)
+    best = np.full(easting.size, np.inf)
+    owner = np.full(easting.size, -1)
     for j, seg in enumerate(segments):
         inside, dist = corridor_distance(seg, easting, northing, corridor_m)
         better = inside & (dist < best)

@@ -12,6 +12,7 @@ from geosp.detect import detect_dipoles
 from geosp.errors import OptionError
 from geosp.figures.detect import TABLE_COLUMNS, detection_figure, detection_table
 from geosp.models import Fault, Stations
+from geosp.segments import assign_points
 from geosp.physics.forward import patch_sp_local, pole_pair_sp
 from geosp.segments import make_segments
 
@@ -271,7 +272,7 @@ def test_false_alarm_rate_matches_decoy_calibration():
     data = detect._SurveyArrays(stations, np.arange(east.size))
     depths = np.asarray(options["template_top_depths_m"], dtype=float)
     corridor = detect._auto_corridor(data, depths)
-    (pos,) = detect._owned_stations(data.easting, data.northing, segments, corridor)
+    (pos,) = assign_points(data.easting, data.northing, segments, corridor_m=corridor)
     setup = detect._SegmentSetup(
         segments[0], pos, data, corridor, depths, np.array([2.0, 4.0]), options["n_decoys"],
         detect._fault_tree(segments, corridor), np.random.default_rng([options["seed"], 0]))
