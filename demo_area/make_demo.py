@@ -531,6 +531,29 @@ def make_demo(out_dir):
     return truth
 
 
+# Sections shared by both demo project files.
+_FAULTS_DEM = '''[faults]
+path = "faults.gpkg"
+layer = "faults"
+id = "FAULT"
+dip_deg = "dip"
+dip_dir_deg = "dip_dir"
+
+[dem]
+path = "dem.tif"
+
+'''
+
+_DETECT = '''[detect]
+# The expected tops are shallow (100-300 m), and the survey is small for the
+# default corridor of 3 x 400 m: templates to 200 m give a 600 m corridor, so
+# decoys can be placed away from the mapped faults.
+template_top_depths_m = [50.0, 100.0, 200.0]
+
+# [fit]      # options: see docs/project-file.md (models, bounds, uncertainty, seed, workers)
+'''
+
+
 def _project_toml():
     return f'''# Cindervale demo area (invented): full reduction from raw leapfrog readings.
 # Station positions come from handheld GPS (lon/lat, WGS 84); SP values come
@@ -557,27 +580,10 @@ value_mv = "DV_mV"
 electrode_checks = "electrode_checks.csv"
 reference_station = "L01-000"
 
-[faults]
-path = "faults.gpkg"
-layer = "faults"
-id = "FAULT"
-dip_deg = "dip"
-dip_dir_deg = "dip_dir"
-
-[dem]
-path = "dem.tif"
-
-[reduce]
+''' + _FAULTS_DEM + '''[reduce]
 mode = "leapfrog"             # the crew stepped the rear electrode ahead each reading
 
-[detect]
-# The expected tops are shallow (100-300 m), and the survey is small for the
-# default corridor of 3 x 400 m: templates to 200 m give a 600 m corridor, so
-# decoys can be placed away from the mapped faults.
-template_top_depths_m = [50.0, 100.0, 200.0]
-
-# [fit]      # options: see docs/project-file.md (models, bounds, uncertainty, seed, workers)
-'''
+''' + _DETECT
 
 
 def _project_total_field_toml():
@@ -595,24 +601,7 @@ value_mv = "SP_mV"
 line = "LINE"
 elevation = "ELEV"
 
-[faults]
-path = "faults.gpkg"
-layer = "faults"
-id = "FAULT"
-dip_deg = "dip"
-dip_dir_deg = "dip_dir"
-
-[dem]
-path = "dem.tif"
-
-[detect]
-# The expected tops are shallow (100-300 m), and the survey is small for the
-# default corridor of 3 x 400 m: templates to 200 m give a 600 m corridor, so
-# decoys can be placed away from the mapped faults.
-template_top_depths_m = [50.0, 100.0, 200.0]
-
-# [fit]      # options: see docs/project-file.md (models, bounds, uncertainty, seed, workers)
-'''
+''' + _FAULTS_DEM + _DETECT
 
 
 def main(argv=None):

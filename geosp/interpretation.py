@@ -18,11 +18,6 @@ from .models import Raster
 from .webmap import CAUTIONS  # noqa: E402  (one wording for map and report)
 
 
-def _station_frame_coords(state):
-    st = state.reduction.stations
-    return st.easting, st.northing
-
-
 def rasters(state):
     """``{file name: Raster}`` of every raster the state can fill (nodata outside the data footprint)."""
     out = {}

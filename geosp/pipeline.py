@@ -24,7 +24,7 @@ from .models import Stations, Survey
 log = logging.getLogger(__name__)
 
 # Options that are computed by the pipeline, not set by users.
-_INTERNAL = {"progress", "station_spacing_m", "corridor_hint_m"}
+_INTERNAL = {"progress", "station_spacing_m"}
 
 # Faults farther than this from every station are out of reach.
 FAULT_REACH_M = 2000.0
@@ -488,16 +488,6 @@ def _missing(state, stage):
             "detect": not state.detections, "fit": state.fits is None}[stage]
 
 
-def outputs_for(state):
-    """Names of the output files the current state can fill."""
-    names = ["interpretation.gpkg", "run.json"]
-    if state.grid is not None:
-        names.append("sp_grid.tif")
-    if state.fits is not None and state.grid is not None:
-        names += ["sp_model.tif", "sp_residual.tif"]
-    return names
-
-
 def execute(project_path, stages, *, out=None, workers=None, scheduler=None, progress=None, say=None):
     """
     Run ``stages`` of a project and write their outputs to ``out``.
@@ -513,7 +503,7 @@ def execute(project_path, stages, *, out=None, workers=None, scheduler=None, pro
     """
     from pathlib import Path
 
-    from .io.atomic import ensure_not_input
+    from .io.atomic import ensure_not_input, make_output_dir
     from .io.state import read_state, write_state
 
     say = say or (lambda *a: None)
@@ -543,11 +533,7 @@ def execute(project_path, stages, *, out=None, workers=None, scheduler=None, pro
         state.warnings = []
     t0 = time.perf_counter()
     run_stages(project, state, stages, workers=workers, scheduler=scheduler, progress=progress, say=say)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as err:
-        raise InputError(out, f"the output folder cannot be created ({err.strerror}).",
-                         "Give --out a folder you can write to, outside any input file.") from None
+    make_output_dir(out)
     write_state(out, state)
     write_outputs(project, state, out, publish="publish" in stages, say=say)
     state.timings["total"] = round(time.perf_counter() - t0, 3)
@@ -700,7 +686,7 @@ def section(model_path, *, stations=None, out):
 
     from .figures.flow import section_figure
     from .flow import run_flow_model
-    from .io.atomic import atomic_path, ensure_not_input
+    from .io.atomic import atomic_path, ensure_not_input, make_output_dir
     from .io.flowmodel import read_flow_model, read_section_stations, write_flow_profile
 
     model = read_flow_model(model_path)
@@ -709,11 +695,7 @@ def section(model_path, *, stations=None, out):
     inputs = [Path(model_path)] + ([Path(stations)] if stations else [])
     ensure_not_input(out, inputs, output_names=("section_profile.csv", "section_profile.gpkg", "section.png"))
     result = run_flow_model(model, stations=observed)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as err:
-        raise InputError(out, f"cannot be used as the output folder ({err.strerror}).",
-                         "Choose a folder name that is not a file.") from None
+    make_output_dir(out)
     written = [write_flow_profile(result, out / "section_profile.csv")]
     if model.profile_origin_xy is not None and model.crs:
         written.append(write_flow_profile(result, out / "section_profile.gpkg"))

@@ -111,3 +111,14 @@ def ensure_not_input(out_dir, input_paths, *, output_names=OUTPUT_NAMES):
                 "overwrite it.",
                 "Choose another output folder with --out, or rename the input file.",
             )
+
+
+def make_output_dir(out_dir):
+    """Create the output folder (and parents); an InputError when it cannot be."""
+    out_dir = Path(out_dir)
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise InputError(out_dir, f"the output folder cannot be created ({err.strerror}).",
+                         "Give --out a folder you can write to, outside any input file.") from None
+    return out_dir
