@@ -219,8 +219,8 @@ def report_content(state, *, title):
     if red.terrain and red.terrain.get("applied"):
         t = red.terrain
         qc_text.append(f"Terrain correction: SP changes by {_fmt(t['slope_mv_per_m'], 2)} mV per metre of elevation "
-                       f"(95 % interval {_fmt(t.get('ci_lo'), 2)} to {_fmt(t.get('ci_hi'), 2)}), estimated from "
-                       f"{t.get('n_used')} stations away from mapped faults; the removed part is in terrain_mv.")
+                       f"(95 % interval {_fmt(t.get('ci_lo'), 2)} to {_fmt(t.get('ci_hi'), 2)}) from "
+                       f"{t.get('n_used')} stations; method: {t.get('method')}. The removed part is in terrain_mv.")
     n_flag = int(np.sum(st.flag != ""))
     qc_text.append(f"{n_flag} stations were flagged and down-weighted (never dropped); see the stations layer.")
     fig_names = []
