@@ -37,7 +37,10 @@ def compare_sources(sources, truth=None):
     ``sources``: iterable of source rows (dicts) or a DataFrame with the
     ``sources`` layer fields. The jump is compared in the planted dip
     direction's sense (a fit with the opposite dip direction has its jump
-    negated, which is exact for a vertical patch).
+    negated, which is exact for a vertical patch). Depths are compared as
+    elevations: a fit whose depths refer to another ground level
+    (``ground_m``) than the planted one is shifted onto the planted ground
+    before the comparison.
     """
     truth = truth or load_truth()
     frame = pd.DataFrame(list(sources) if not isinstance(sources, pd.DataFrame) else sources)
@@ -58,12 +61,16 @@ def compare_sources(sources, truth=None):
         distance = np.hypot(candidates["top_x"] - planted["top_x"], candidates["top_y"] - planted["top_y"])
         best = candidates.iloc[int(np.argmin(distance.to_numpy()))]
         flipped = _angle_diff(best["dip_dir_deg"], planted["dip_dir_deg"]) > 90.0
+        ground = best.get("ground_m", np.nan)
+        shift = float(planted["ground_m"] - ground) if np.isfinite(ground) else 0.0
+        top, bottom = best["top_depth_m"] + shift, best["bottom_depth_m"] + shift
         geo_true = np.sqrt(planted["top_depth_m"] * planted["bottom_depth_m"])
-        geo_fit = np.sqrt(best["top_depth_m"] * best["bottom_depth_m"])
+        geo_fit = np.sqrt(top * bottom)
         row.update(
             found=True, source_id=best["source_id"], offset_m=float(distance.min()),
-            top_depth_m=float(best["top_depth_m"]), top_depth_lo_m=float(best.get("top_depth_lo_m", np.nan)),
-            top_depth_hi_m=float(best.get("top_depth_hi_m", np.nan)), bottom_depth_m=float(best["bottom_depth_m"]),
+            datum_shift_m=shift, top_depth_m=float(top),
+            top_depth_lo_m=float(best.get("top_depth_lo_m", np.nan) + shift),
+            top_depth_hi_m=float(best.get("top_depth_hi_m", np.nan) + shift), bottom_depth_m=float(bottom),
             geo_mean_true_m=float(geo_true), geo_mean_m=float(geo_fit), dip_deg=float(best["dip_deg"]),
             jump_mv=float(-best["jump_mv"] if flipped else best["jump_mv"]), length_m=float(best["length_m"]),
         )

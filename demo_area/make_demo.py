@@ -490,7 +490,8 @@ def make_demo(out_dir):
         },
         "terrain_treatment": "Patch depths are taken below each station's own elevation: "
                              "fault_patch_sp(..., ground_m) adds (station elevation - ground_m) "
-                             "to both depths, keeping the plane through the mapped trace point.",
+                             "to both depths (never less than -top_depth_m/2), keeping the plane "
+                             "through the mapped trace point.",
         "sources": sources,
         "source_free_faults": SOURCE_FREE_FAULTS,
         "pipeline": {

@@ -79,7 +79,9 @@ def main(argv=None):
         "The demo area and its sources are invented (`demo_area/README.md`).",
         "",
         f"Tolerances of the fitting stage: top depth within {TOP_DEPTH_RTOL:.0%} and the geometric-mean depth "
-        f"√(top·bottom) within {GEO_MEAN_RTOL:.0%}. Ranges are the 16th–84th percentiles geosp reports.",
+        f"√(top·bottom) within {GEO_MEAN_RTOL:.0%}. Ranges are the 16th–84th percentiles geosp reports. "
+        "Fitted depths refer to the fit's own ground level (`ground_m`); here they are shifted onto the "
+        "planted ground level, so that both describe the same elevations.",
         "",
         "| planted | fault | found as | top depth m (planted → fitted, 16–84 %) | bottom m | √(top·bottom) m | dip ° | "
         "jump mV | length m | offset m | within tolerance |",

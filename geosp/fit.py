@@ -25,6 +25,7 @@ from functools import partial
 
 import numpy as np
 import pandas as pd
+import shapely
 from scipy import optimize
 from scipy.spatial import cKDTree
 from scipy.stats import qmc
@@ -33,6 +34,7 @@ from . import physics
 from .errors import InputError, OptionError
 from .models import FitResult, SegmentFit
 from .parallel import item_seed, map_segments
+from .segments import assign_points, corridor_distance
 
 logger = logging.getLogger(__name__)
 
@@ -43,6 +45,8 @@ _REGIONAL_SCALE = 1000.0  # regional slopes are solved per km for conditioning
 _MIN_STATIONS = 12  # one patch has 9 parameters; keep a few degrees of freedom
 _POLE_MAX_DEPTH = 50.0  # m, "shallow" pole pair (physics.md §3, common practice)
 _POLE_MAX_SEPARATION = 200.0  # m
+_AUTO_WINDOW = 1.5  # fit window half-width over the detection corridor ("auto")
+_JOINT_ROUNDS = 2  # joint fit + refits of interacting sources, at most this many times
 _SOURCE_FIELDS = (
     "source_id", "fault_id", "segment_id", "model", "top_x", "top_y", "strike_deg", "dip_deg",
     "dip_dir_deg", "top_depth_m", "bottom_depth_m", "length_m", "jump_mv", "top_depth_lo_m",
@@ -147,10 +151,13 @@ class _Model:
         ratio = np.exp(p[self.ratio_index]) if self.ratio_index is not None else 1.0
         return out, dip, offset, ratio
 
-    def basis(self, p, along=None, across=None):
-        """Unit-strength columns (n, n_columns) at the stations (or given local points)."""
-        along = self.data["s"] if along is None else along
-        across = self.data["t"] if across is None else across
+    def basis(self, p, along=None, across=None, offset=None):
+        """
+        Unit-strength columns (n, n_columns) at the stations (or at given local
+        points with their depth offsets, m).
+        """
+        if along is None:
+            along, across, offset = self.data["s"], self.data["t"], self.data["offset"]
         if self.name == "pole_pair":
             pos = (p[0], p[1], np.exp(p[2]))
             neg = (p[0] + p[3], p[1] + p[4], np.exp(p[5]))
@@ -158,14 +165,14 @@ class _Model:
             return _pole_pair_local(along, across, pos, neg)[:, None]
         if self.n_columns == 0:
             return np.zeros((along.size, 0))
-        patches, dip, offset, ratio = self.patches(p)
+        patches, dip, shift, ratio = self.patches(p)
         cols = []
         for patch in patches:
             self.data["counter"][0] += 1
             cols.append(physics.patch_sp_local(
-                along, across - offset, centre_m=patch["centre"], length_m=patch["length"],
+                along, across - shift, centre_m=patch["centre"], length_m=patch["length"],
                 depth_top_m=patch["top"], depth_bottom_m=patch["bottom"], dip_deg=dip,
-                jump_mv=1.0, sigma_ratio=ratio,
+                jump_mv=1.0, sigma_ratio=ratio, depth_offset_m=offset,
             ))
         return np.column_stack(cols)
 
@@ -173,7 +180,7 @@ class _Model:
         """∂(basis)/∂p in the transformed parameters, shape (n, n_columns, k)."""
         if self.n_patches == 0 or not hasattr(physics, "patch_sp_local_jacobian"):
             return self._difference_jacobian(p, g0)
-        along, across = self.data["s"], self.data["t"]
+        along, across, depth_offset = self.data["s"], self.data["t"], self.data["offset"]
         patches, dip, offset, ratio = self.patches(p)
         k = self.k_nonlinear
         jac = np.zeros((along.size, self.n_patches, k))
@@ -182,7 +189,7 @@ class _Model:
             g, dg = physics.patch_sp_local_jacobian(
                 along, across - offset, centre_m=patch["centre"], length_m=patch["length"],
                 depth_top_m=patch["top"], depth_bottom_m=patch["bottom"], dip_deg=dip,
-                jump_mv=1.0, sigma_ratio=ratio,
+                jump_mv=1.0, sigma_ratio=ratio, depth_offset_m=depth_offset,
             )
             height = patch["bottom"] - patch["top"]
             jac[:, j, 4 * j] = dg[:, 0]
@@ -459,6 +466,24 @@ def _covariance(problem, p, x, s2):
     return cov, names, cov_t
 
 
+def _terrain_offsets(elevation, across, used, spacing, terrain):
+    """
+    Depth offsets (m) of the stations from the fit's datum, and the datum (m).
+
+    The datum is the median elevation of the used stations within two
+    station spacings (at least 50 m) of the trace, else of all used stations;
+    without elevations (or with ``terrain`` off) the offsets are 0 and the
+    datum NaN.
+    """
+    known = np.isfinite(elevation)
+    if not terrain or not np.any(known & used):
+        return np.zeros(elevation.size), np.nan
+    near = known & used & (np.abs(across) <= max(50.0, 2.0 * spacing))
+    pool = elevation[near] if near.sum() >= 3 else elevation[known & used]
+    ground = float(np.median(pool))
+    return np.where(known, elevation - ground, 0.0), ground
+
+
 def _station_spacing(s, t):
     if s.size < 2:
         return 1.0
@@ -473,7 +498,7 @@ def _station_spacing(s, t):
 def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
                 uncertainty="profile", huber=True, huber_passes=4, dip_range_deg=(30.0, 90.0),
                 fit_sigma_ratio=False, max_trace_offset_m=0.0, min_bic_gain=10.0,
-                mcmc_steps=1500, mcmc_walkers=32, seed=0):
+                terrain=True, mcmc_steps=1500, mcmc_walkers=32, seed=0):
     """
     Fit fault-patch sources (and rival models) to the stations of one segment.
 
@@ -531,7 +556,16 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
     min_bic_gain : float
         A source model is accepted only when its BIC is lower than that of
         the no-source model by at least this much ("very strong" evidence is
-        ΔBIC > 10 on the Kass & Raftery scale [Kass1995]_). Default 10.
+        ΔBIC > 10 on the Kass & Raftery scale [Kass1995]_); two patches
+        must also beat one patch by this much. Default 10.
+    terrain : bool
+        Hold the patches in absolute elevation: the depths of the fit refer
+        to a datum, the median elevation of the stations within two station
+        spacings (at least 50 m) of the trace, and each station sees them
+        shifted by its own elevation minus the datum (physics notes §2.5;
+        the pole pair stays on a flat datum). Reported depths are below
+        this datum, given as ``ground_m``. Stations without elevation take
+        the datum. Default True (False: flat datum at every station).
     mcmc_steps, mcmc_walkers : int
         Chain length and ensemble size for ``uncertainty="mcmc"``.
         Defaults 1500 and 32.
@@ -568,68 +602,104 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
     * [Golub1973]_, [Kaufman1975]_, [Huber1964]_, [Akaike1974]_, [Schwarz1978]_,
       [Kass1995]_, [Goodman2010]_
     """
-    start_time = time.perf_counter()
-    models = (models,) if isinstance(models, str) else tuple(models)
-    _check_options(models, n_starts, n_local, uncertainty, dip_range_deg, huber_passes)
-    segment = detection.segment
-    index = np.asarray(detection.station_index, dtype=int)
-    d_all = np.asarray(stations.sp_mv, dtype=float)[index]
-    weight = np.asarray(stations.weight, dtype=float)[index]
-    sigma = np.asarray(stations.sigma_mv, dtype=float)[index]
-    noise = float(detection.noise_mv) if np.isfinite(detection.noise_mv) and \
-        detection.noise_mv > 0 else np.nan
-    sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, noise)
-    used = np.isfinite(d_all) & (weight > 0)
-    s_all, t_all = segment.to_local(stations.easting[index], stations.northing[index])
-    s_all, t_all = np.asarray(s_all, float), np.asarray(t_all, float)
-    n = int(used.sum())
-    if n < _MIN_STATIONS:
-        raise InputError(
-            f"segment {segment.segment_id}", f"only {n} usable stations in the fit corridor.",
-            "Widen the corridor ([detect] corridor_m) or skip this segment.",
-        )
-    s, t, d = s_all[used], t_all[used], d_all[used]
-    if not np.all(np.isfinite(sigma[used])):
-        # no noise estimate: robust scatter about a plane (1.4826·MAD, common practice)
-        plane = np.column_stack([np.ones(n), s, t])
-        res = d - plane @ np.linalg.lstsq(plane, d, rcond=None)[0]
-        fallback = max(1.4826 * np.median(np.abs(res - np.median(res))), 1e-3)
-        sigma = np.where(np.isfinite(sigma), sigma, fallback)
-    sig = sigma[used]
-    w0 = weight[used] / sig ** 2
-    spacing = _station_spacing(s, t)
-    corridor = float(np.max(np.abs(t))) if n else 1.0
-    seg_len = float(segment.length_m)
-    z_min = max(10.0, 0.5 * spacing)
-    top_hi = max(corridor / 2.0, 3.0 * z_min)
-    len_lo = 3.0 * spacing
-    len_hi = max(1.5 * seg_len, 2.0 * len_lo)
-    dip_lo, dip_hi = (float(v) for v in dip_range_deg)
-    if not segment.dip_known:
-        dip_hi = 180.0 - dip_lo
-    bounds = {
-        "centre": (-0.25 * seg_len, 1.25 * seg_len),
-        "length": (len_lo, len_hi),
-        "top": (z_min, top_hi),
-        "height": (z_min, max(4.0 * corridor, 3.0 * z_min)),
-        "dip": (dip_lo, dip_hi),
-        "offset": float(max_trace_offset_m),
-        "fit_ratio": bool(fit_sigma_ratio),
-        "pole_depth": (z_min, max(_POLE_MAX_DEPTH, 2.0 * z_min)),
-        "s_span": (float(s.min()), float(s.max())),
-        "t_span": (float(t.min()), float(t.max())),
-    }
-    counter = [0]
-    scale = _REGIONAL_SCALE
-    data = {"s": s, "t": t, "d": d, "counter": counter,
-            "regional": np.column_stack([np.ones(n), s / scale, t / scale])}
-    rng = item_seed(seed, segment.segment_id)
+    options = dict(models=models, n_starts=n_starts, n_local=n_local, uncertainty=uncertainty,
+                   huber=huber, huber_passes=huber_passes, dip_range_deg=dip_range_deg,
+                   fit_sigma_ratio=fit_sigma_ratio, max_trace_offset_m=max_trace_offset_m,
+                   min_bic_gain=min_bic_gain, terrain=terrain, mcmc_steps=mcmc_steps,
+                   mcmc_walkers=mcmc_walkers, seed=seed)
+    return _fit_segment(stations, detection, options)
 
+
+class _Setup:
+    """Data, weights, local frame, terrain datum and bounds of one segment's fit window."""
+
+    def __init__(self, stations, detection, options, background=None):
+        segment = self.segment = detection.segment
+        index = self.index = np.asarray(detection.station_index, dtype=int)
+        d_all = np.asarray(stations.sp_mv, dtype=float)[index]
+        if background is not None:
+            d_all = d_all - background
+        weight = np.asarray(stations.weight, dtype=float)[index]
+        sigma = np.asarray(stations.sigma_mv, dtype=float)[index]
+        noise = float(detection.noise_mv) if np.isfinite(detection.noise_mv) and \
+            detection.noise_mv > 0 else np.nan
+        sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, noise)
+        used = self.used = np.isfinite(d_all) & (weight > 0)
+        s_all, t_all = segment.to_local(stations.easting[index], stations.northing[index])
+        self.s_all, self.t_all = np.asarray(s_all, float), np.asarray(t_all, float)
+        n = self.n = int(used.sum())
+        if n < _MIN_STATIONS:
+            raise InputError(
+                f"segment {segment.segment_id}", f"only {n} usable stations in the fit window.",
+                "Widen the window ([fit] window_m) or skip this segment.",
+            )
+        s, t, d = self.s_all[used], self.t_all[used], d_all[used]
+        if not np.all(np.isfinite(sigma[used])):
+            # no noise estimate: robust scatter about a plane (1.4826·MAD, common practice)
+            plane = np.column_stack([np.ones(n), s, t])
+            res = d - plane @ np.linalg.lstsq(plane, d, rcond=None)[0]
+            fallback = max(1.4826 * np.median(np.abs(res - np.median(res))), 1e-3)
+            sigma = np.where(np.isfinite(sigma), sigma, fallback)
+        self.s, self.t, self.d = s, t, d
+        self.sig = sigma[used]
+        self.w0 = weight[used] / self.sig ** 2
+        spacing = _station_spacing(s, t)
+        self.elevation = np.asarray(stations.upward, dtype=float)[index]
+        self.offset_all, self.ground = _terrain_offsets(
+            self.elevation, self.t_all, used, spacing, options["terrain"])
+        half = float(np.max(np.abs(t))) if n else 1.0
+        seg_len = float(segment.length_m)
+        z_min = max(10.0, 0.5 * spacing)
+        len_lo = 3.0 * spacing
+        dip_lo, dip_hi = (float(v) for v in options["dip_range_deg"])
+        if not segment.dip_known:
+            dip_hi = 180.0 - dip_lo
+        self.bounds = {
+            "centre": (-0.25 * seg_len, 1.25 * seg_len),
+            "length": (len_lo, max(1.5 * seg_len, 2.0 * len_lo)),
+            "top": (z_min, max(half / 2.0, 3.0 * z_min)),
+            "height": (z_min, max(4.0 * half, 3.0 * z_min)),
+            "dip": (dip_lo, dip_hi),
+            "offset": float(options["max_trace_offset_m"]),
+            "fit_ratio": bool(options["fit_sigma_ratio"]),
+            "pole_depth": (z_min, max(_POLE_MAX_DEPTH, 2.0 * z_min)),
+            "s_span": (float(s.min()), float(s.max())),
+            "t_span": (float(t.min()), float(t.max())),
+        }
+        self.counter = [0]
+        self.data = {"s": s, "t": t, "d": d, "counter": self.counter,
+                     "offset": self.offset_all[used],
+                     "regional": np.column_stack([np.ones(n), s / _REGIONAL_SCALE,
+                                                  t / _REGIONAL_SCALE])}
+
+
+def _fit_segment(stations, detection, options, background=None, start=None):
+    """
+    Body of :func:`fit_segment`. ``background`` (mV at ``station_index``) is
+    subtracted from the data first (the fields of sources fitted on other
+    segments); ``start`` = (model name, p) adds a local refinement from ``p``
+    to that model's global search.
+    """
+    start_time = time.perf_counter()
+    models = options["models"]
+    models = (models,) if isinstance(models, str) else tuple(models)
+    _check_options(models, options["n_starts"], options["n_local"], options["uncertainty"],
+                   options["dip_range_deg"], options["huber_passes"])
+    setup = _Setup(stations, detection, options, background)
+    segment, index, used, n = setup.segment, setup.index, setup.used, setup.n
+    s, t, d, sig, w0, data = setup.s, setup.t, setup.d, setup.sig, setup.w0, setup.data
+    s_all, t_all, offset_all = setup.s_all, setup.t_all, setup.offset_all
+    counter, scale = setup.counter, _REGIONAL_SCALE
+    rng = item_seed(options["seed"], segment.segment_id)
     fits = {}
     for name in ("none",) + models:
-        model = _Model(name, data, bounds)
-        fits[name] = _fit_model(model, data, w0, sig, rng, n_starts=n_starts,
-                                n_local=n_local, huber=huber, huber_passes=huber_passes)
+        model = _Model(name, data, setup.bounds)
+        fits[name] = _fit_model(
+            model, data, w0, sig, rng, n_starts=options["n_starts"], n_local=options["n_local"],
+            huber=options["huber"], huber_passes=options["huber_passes"],
+            start=start[1] if start is not None and name == start[0] else None)
+    min_bic_gain, uncertainty = options["min_bic_gain"], options["uncertainty"]
+    mcmc_steps, mcmc_walkers = options["mcmc_steps"], options["mcmc_walkers"]
 
     # model selection ---------------------------------------------------------------------
     rows = []
@@ -642,6 +712,9 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
     gains = {m: bic["none"] - bic[m] for m in models}
     selection["bic_gain"] = [0.0 if m == "none" else gains[m] for m in selection["model"]]
     eligible = [m for m in models if gains[m] >= min_bic_gain]
+    if "two_patches" in eligible and "fault_patch" in eligible \
+            and bic["fault_patch"] - bic["two_patches"] < min_bic_gain:
+        eligible.remove("two_patches")  # a second patch must earn its parameters too
     chosen = min(eligible, key=lambda m: bic[m]) if eligible else "none"
 
     best = fits[chosen]
@@ -682,9 +755,8 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
             sources.append(_pole_row(segment, model, p, x, cov, names, stats, flags))
             flags.append("likely cultural")
         else:
-            elevation = np.asarray(stations.upward, dtype=float)[index][used]
             sources += _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals,
-                                   s, t, elevation)
+                                   s, t, setup.elevation[used], setup.ground)
             if model.patches(p)[1] > 90.0 and "jump_mv" in profiles:
                 # report the jump profile in the contract's sign (dip-direction side minus other)
                 values, dchi2 = profiles["jump_mv"]
@@ -693,7 +765,8 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
 
     predicted = np.full(index.size, np.nan)
     source_mv = np.full(index.size, np.nan)
-    g_all = model.basis(p, s_all, t_all) if model.n_columns else np.zeros((index.size, 0))
+    g_all = model.basis(p, s_all, t_all, offset_all) if model.n_columns \
+        else np.zeros((index.size, 0))
     src_all = g_all @ x[:model.n_columns] if model.n_columns else np.zeros(index.size)
     reg_all = np.column_stack([np.ones(index.size), s_all / scale, t_all / scale]) \
         @ x[model.n_columns:]
@@ -706,11 +779,17 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
         predicted_mv=predicted, source_mv=source_mv, selection=selection, profiles=profiles,
         correlation=correlation, flags=tuple(flags), n_forward=int(counter[0]),
         seconds=time.perf_counter() - start_time, ambiguities=ambiguities, weights=weights,
+        params=np.asarray(p, dtype=float),
     )
 
 
-def _fit_model(model, data, w0, sig, rng, *, n_starts, n_local, huber, huber_passes):
-    """Global search plus Huber IRLS for one model; returns a dict with p, x, χ², weights."""
+def _fit_model(model, data, w0, sig, rng, *, n_starts, n_local, huber, huber_passes,
+               start=None, search=True):
+    """
+    Global search (``search``) and/or a local refinement from ``start`` (the
+    better wins), then Huber IRLS, for one model; returns a dict with p, x,
+    χ², weights.
+    """
     d = data["d"]
     robust = np.ones(d.size)
     minima = []
@@ -721,7 +800,10 @@ def _fit_model(model, data, w0, sig, rng, *, n_starts, n_local, huber, huber_pas
         if model.k_nonlinear == 0:
             p = np.zeros(0)
         elif i == 0:
-            minima = problem.global_fit(rng, n_starts, n_local)
+            minima = problem.global_fit(rng, n_starts, n_local) if search else []
+            if start is not None:
+                q, cost = problem.local_fit(np.clip(start, model.lower, model.upper))
+                minima = sorted(minima + [(model.canonical(q), cost)], key=lambda m: m[1])
             p = minima[0][0]
         else:
             p, _ = problem.local_fit(p)
@@ -914,7 +996,8 @@ def _mcmc_interval(problem, p, s2, cov_t, j, rng, steps, walkers):
             "jump": tuple(float(v) for v in np.percentile(jumps, [16, 84]))}
 
 
-def _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals, s, t, elevation):
+def _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals, s, t, elevation,
+                ground):
     """Rows of the ``sources`` layer for a patch model (contract sign rule applied)."""
     patches, dip_local, offset, ratio = model.patches(p)
     sd = dict(zip(names, np.sqrt(np.maximum(np.diag(cov), 0.0))))
@@ -991,6 +1074,7 @@ def _patch_rows(segment, model, p, x, cov, names, stats, flags, intervals, s, t,
             "jump_sd_mv": float(sd[f"jump_mv{suffix}"]),
             "length_sd_m": float(sd[f"length_m{suffix}"]),
             "location_sd_m": float(np.sqrt(max(grad_loc @ cov @ grad_loc, 0.0))),
+            "ground_m": float(ground),
         }
         rows.append(row)
     return rows
@@ -1045,8 +1129,8 @@ def _fit_one(item, options):
     return replace(fit, station_index=original_index)
 
 
-def fit_segments(stations, detections, *, workers=None, scheduler=None, progress=None,
-                 **fit_options):
+def fit_segments(stations, detections, *, window_m="auto", joint=True, workers=None,
+                 scheduler=None, progress=None, **fit_options):
     """
     Fit every detected segment and re-solve all accepted source strengths jointly.
 
@@ -1056,7 +1140,19 @@ def fit_segments(stations, detections, *, workers=None, scheduler=None, progress
         All stations (reduced ``sp_mv`` in mV).
     detections : sequence of Detection
         One per segment; only those with ``detected`` are fitted (model
-        selection still decides whether a source is accepted).
+        selection still decides whether a source is accepted). All of them
+        (detected or not) decide which fault each station is nearest to.
+    window_m : float or "auto"
+        Half-width of each segment's fit window and its extension past the
+        segment's ends along the fault (m). The window holds the stations
+        whose nearest mapped fault is the segment's own, so a source that
+        runs across the cut between two segments of one fault is fitted
+        whole. "auto": 1.5 × the detection corridor. Default "auto".
+    joint : bool
+        Re-fit, together, the accepted fault-patch sources whose windows
+        overlap (one regional plane), then refine each one with the fields
+        of the others held fixed, so that one source's flank is not read as
+        another's regional or depth. Default True.
     workers : int, "auto" or None
         Processes for the segment fits (see :func:`geosp.parallel.map_segments`).
     scheduler : str or None
@@ -1082,6 +1178,10 @@ def fit_segments(stations, detections, *, workers=None, scheduler=None, progress
     fit is kept in ``fits`` and its sources get no row); the joint linear
     solve then avoids double-counting one anomaly.
     """
+    if not (window_m == "auto" or (isinstance(window_m, (int, float))
+                                   and not isinstance(window_m, bool) and window_m > 0)):
+        raise OptionError("[fit] window_m", f"got {window_m!r}.",
+                          'Give a positive distance in metres, or "auto".')
     known = set(inspect.signature(fit_segment).parameters) - {"stations", "detection"}
     unknown = sorted(set(fit_options) - known)
     if unknown:
@@ -1089,7 +1189,10 @@ def fit_segments(stations, detections, *, workers=None, scheduler=None, progress
         hint = "; ".join(f"{u} (did you mean {h[0]}?)" if h else u for u, h in zip(unknown, hints))
         raise OptionError("[fit]", f"unknown option(s): {hint}.",
                           f"Known options: {', '.join(sorted(known))}.")
-    detections = [det for det in detections if det.detected]
+    detections = list(detections)
+    windows = _fit_windows(stations, detections, window_m)
+    detections = [replace(det, station_index=windows[i]) for i, det in enumerate(detections)
+                  if det.detected]
     sp = np.asarray(stations.sp_mv, dtype=float)
     usable = np.isfinite(sp) & (np.asarray(stations.weight, dtype=float) > 0)
     kept = []
@@ -1110,10 +1213,222 @@ def fit_segments(stations, detections, *, workers=None, scheduler=None, progress
     fits = tuple(map_segments(func, items, workers=workers, scheduler=scheduler,
                               progress=progress))
     accepted = _resolve_overlaps(fits)
+    if joint:
+        fits = _refine_interacting(stations, fits, accepted, detections, fit_options,
+                                   workers=workers, scheduler=scheduler)
     sources, model_mv, regional = _joint_solve(stations, fits, accepted, detections)
     residual = np.asarray(stations.sp_mv, dtype=float) - model_mv
     return FitResult(fits=fits, model_mv=model_mv, residual_mv=residual, regional=regional,
                      sources=tuple(sources))
+
+
+def _fit_windows(stations, detections, window_m):
+    """
+    Station indices of each segment's fit window: inside ``window`` of the
+    segment (across, and past its ends along strike) and nearest to the
+    segment's own fault among all mapped segments.
+    """
+    segments = [det.segment for det in detections]
+    easting = np.asarray(stations.easting, dtype=float)
+    northing = np.asarray(stations.northing, dtype=float)
+    owners = assign_points(easting, northing, segments, corridor_m=np.inf)
+    fault = np.full(easting.size, -1)
+    fault_ids = {fid: k for k, fid in enumerate(dict.fromkeys(s.fault_id for s in segments))}
+    for j, own in enumerate(owners):
+        fault[own] = fault_ids[segments[j].fault_id]
+    out = []
+    for det, seg in zip(detections, segments):
+        if window_m == "auto":
+            corridor = det.best_template.get("corridor_m", np.nan) if det.best_template else np.nan
+            if not np.isfinite(corridor):
+                _, t = seg.to_local(easting[det.station_index], northing[det.station_index])
+                corridor = float(np.max(np.abs(t))) if np.size(t) else 0.0
+            half = _AUTO_WINDOW * corridor
+        else:
+            half = float(window_m)
+        inside, _ = corridor_distance(seg, easting, northing, half)
+        out.append(np.flatnonzero(inside & (fault == fault_ids[seg.fault_id])))
+    return out
+
+
+def _window_polygon(segment, station_index, stations):
+    """
+    Rectangle (shapely) of a fit window in the segment's frame: the along-strike
+    span of its stations and their largest distance across, on both sides (the
+    stations nearer another fault are left out of the window, not its reach).
+    """
+    s, t = segment.to_local(np.asarray(stations.easting, dtype=float)[station_index],
+                            np.asarray(stations.northing, dtype=float)[station_index])
+    half = float(np.max(np.abs(t)))
+    corners = np.array([[s.min(), -half], [s.max(), -half], [s.max(), half], [s.min(), half]])
+    return shapely.Polygon(np.column_stack(segment.to_world(corners[:, 0], corners[:, 1])))
+
+
+def _interaction_groups(stations, fits, accepted):
+    """Groups (lists of fit indices, two or more) of accepted patch fits with overlapping windows."""
+    patch = [i for i in accepted if fits[i].chosen in ("fault_patch", "two_patches")]
+    hulls = {i: _window_polygon(fits[i].segment, fits[i].station_index, stations)
+             for i in patch}
+    parent = {i: i for i in patch}
+
+    def root(i):
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    for a, i in enumerate(patch):
+        for j in patch[a + 1:]:
+            if hulls[i].intersects(hulls[j]):
+                parent[root(j)] = root(i)
+    groups = {}
+    for i in patch:
+        groups.setdefault(root(i), []).append(i)
+    return [sorted(g) for g in groups.values() if len(g) > 1]
+
+
+class _JointModel:
+    """Several segments' patch models side by side on one station set (block basis)."""
+
+    def __init__(self, members):
+        self.members = members
+        self.name = "joint"
+        self.lower = np.concatenate([m.lower for m in members])
+        self.upper = np.concatenate([m.upper for m in members])
+        self.k_nonlinear = int(sum(m.k_nonlinear for m in members))
+        self.n_columns = int(sum(m.n_columns for m in members))
+        self.k = self.k_nonlinear + self.n_columns + 3
+        self.n_patches = int(sum(m.n_patches for m in members))
+        cuts = np.cumsum([0] + [m.k_nonlinear for m in members])
+        cols = np.cumsum([0] + [m.n_columns for m in members])
+        self.param_slices = [slice(a, b) for a, b in zip(cuts[:-1], cuts[1:])]
+        self.column_slices = [slice(a, b) for a, b in zip(cols[:-1], cols[1:])]
+
+    def split(self, p):
+        return [p[sl] for sl in self.param_slices]
+
+    def canonical(self, p):
+        return np.concatenate([m.canonical(q) for m, q in zip(self.members, self.split(p))])
+
+    def basis(self, p):
+        return np.hstack([m.basis(q) for m, q in zip(self.members, self.split(p))])
+
+    def basis_jacobian(self, p, g0=None):
+        g0 = self.basis(p) if g0 is None else g0
+        jac = np.zeros((g0.shape[0], self.n_columns, self.k_nonlinear))
+        for m, q, ps, cs in zip(self.members, self.split(p), self.param_slices,
+                                self.column_slices):
+            jac[:, cs, ps] = m.basis_jacobian(q, g0[:, cs])
+        return jac
+
+
+def _refine_interacting(stations, fits, accepted, detections, options, *, workers, scheduler):
+    """Joint re-fit of each group of interacting accepted sources (see fit_segments)."""
+    groups = _interaction_groups(stations, fits, accepted)
+    if not groups:
+        return fits
+    by_id = {det.segment.segment_id: det for det in detections}
+    items = []
+    for group in groups:
+        union = np.unique(np.concatenate([fits[i].station_index for i in group]))
+        local = {int(v): k for k, v in enumerate(union)}
+        members = []
+        for i in group:
+            f = fits[i]
+            det = by_id[f.segment.segment_id]
+            own = np.array([local[int(v)] for v in f.station_index], dtype=int)
+            members.append((replace(det, station_index=own), f.chosen, f.params,
+                            f.ambiguities))
+        items.append((stations.subset(union), members, union))
+    options = {**_fit_defaults(), **options}
+    refined = map_segments(partial(_refine_group, options=options), items, workers=workers,
+                           scheduler=scheduler)
+    out = list(fits)
+    for group, new in zip(groups, refined):
+        for i, fit in zip(group, new):
+            out[i] = fit
+    return tuple(out)
+
+
+def _fit_defaults():
+    """Keyword defaults of :func:`fit_segment`."""
+    return {name: par.default for name, par in inspect.signature(fit_segment).parameters.items()
+            if par.default is not inspect.Parameter.empty}
+
+
+def _refine_group(item, options):
+    """
+    Worker entry: joint local fit of a group's patch models on the union of
+    their windows (one regional plane, Huber IRLS), then each member re-fitted
+    alone (global search plus the joint solution as a start, model selection
+    again) with the others' joint fields subtracted; its intervals then hold
+    the others fixed. Repeated once more when a member's chosen model
+    changed. Returns one SegmentFit per member, indexed like the original
+    stations.
+    """
+    stations, members, union = item
+    setups = [_Setup(stations, det, options) for det, *_ in members]
+    d = np.asarray(stations.sp_mv, dtype=float)
+    weight = np.asarray(stations.weight, dtype=float)
+    sigma = np.asarray(stations.sigma_mv, dtype=float)
+    noise = np.full(d.size, np.nan)
+    for setup in setups:
+        own = setup.index[setup.used]
+        noise[own] = np.where(np.isfinite(noise[own]), noise[own], setup.sig)
+    sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, noise)
+    used = np.isfinite(d) & (weight > 0) & np.isfinite(sigma)
+    e = np.asarray(stations.easting, dtype=float)[used]
+    nth = np.asarray(stations.northing, dtype=float)[used]
+    elevation = np.asarray(stations.upward, dtype=float)[used]
+    counter = [0]
+    data = {"d": d[used], "counter": counter,
+            "regional": np.column_stack([np.ones(e.size), (e - e.mean()) / _REGIONAL_SCALE,
+                                         (nth - nth.mean()) / _REGIONAL_SCALE])}
+    sig = sigma[used]
+    w0 = weight[used] / sig ** 2
+    frames = []
+    for setup in setups:
+        s, t = setup.segment.to_local(e, nth)
+        offset = np.where(np.isfinite(elevation) & np.isfinite(setup.ground),
+                          elevation - setup.ground, 0.0)
+        frames.append({"s": np.asarray(s, float), "t": np.asarray(t, float),
+                       "offset": offset, "counter": counter})
+    current = [(chosen, params) for _det, chosen, params, _amb in members]
+    out = None
+    for _round in range(_JOINT_ROUNDS):
+        active = [k for k, (chosen, _p) in enumerate(current)
+                  if chosen in ("fault_patch", "two_patches")]
+        if len(active) < 2 and out is not None:
+            break
+        models = [_Model(current[k][0], frames[k], setups[k].bounds) for k in active]
+        joint_model = _JointModel(models)
+        start = np.concatenate([np.clip(current[k][1], m.lower, m.upper)
+                                for k, m in zip(active, models)])
+        best = _fit_model(joint_model, data, w0, sig, item_seed(options["seed"], "joint"),
+                          n_starts=1, n_local=1, huber=options["huber"],
+                          huber_passes=options["huber_passes"], start=start, search=False)
+        fields = np.zeros((len(members), d.size))
+        parts = dict(zip(active, joint_model.split(best["p"])))
+        for k, m, cs in zip(active, models, joint_model.column_slices):
+            fields[k, used] = m.basis(parts[k]) @ best["x"][cs]
+        total = fields.sum(axis=0)
+        out = []
+        for k, (setup, (det, _chosen, _params, ambiguities)) in enumerate(zip(setups, members)):
+            background = (total - fields[k])[det.station_index]
+            start_k = (current[k][0], parts[k]) if k in parts else None
+            fit = _fit_segment(stations, det, options, background=background, start=start_k)
+            flags = fit.flags
+            if ambiguities and fit.sources and "multimodal" not in flags:
+                flags = flags + ("multimodal",)
+            group = ",".join(m[0].segment.segment_id for m in members)
+            rows = tuple({**row, "joint_group": group} for row in fit.sources)
+            out.append(replace(fit, station_index=union[det.station_index], sources=rows,
+                               flags=flags))
+        changed = [f.chosen for f in out] != [c for c, _p in current]
+        current = [(f.chosen, f.params) for f in out]
+        if not changed:
+            break
+    return out
 
 
 def _resolve_overlaps(fits):
@@ -1141,7 +1456,7 @@ def _source_column(row, coordinates):
     unit = dict(row)
     unit["jump_mv"] = 1.0
     unit["pole_k_mv_m"] = 1.0
-    return physics.sources_sp(coordinates[:2], [unit])
+    return physics.sources_sp(coordinates, [unit])
 
 
 def _joint_solve(stations, fits, accepted, detections):
@@ -1158,7 +1473,8 @@ def _joint_solve(stations, fits, accepted, detections):
     rows = [dict(r) for i in accepted for r in fits[i].sources]
     e0 = float(np.mean(e[used])) if used.any() else 0.0
     n0 = float(np.mean(nth[used])) if used.any() else 0.0
-    columns = [_source_column(r, (e, nth)) for r in rows]
+    up = np.asarray(stations.upward, dtype=float)
+    columns = [_source_column(r, (e, nth, up)) for r in rows]
     design = np.column_stack(columns + [np.ones(e.size), (e - e0) / _REGIONAL_SCALE,
                                         (nth - n0) / _REGIONAL_SCALE])
     sw = np.sqrt(weight / sigma ** 2)

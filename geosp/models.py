@@ -287,6 +287,7 @@ class SegmentFit:
     seconds: float = 0.0
     ambiguities: tuple = ()  # other minima within delta chi2 < 4
     weights: np.ndarray | None = None  # final robust weights at station_index
+    params: np.ndarray | None = None  # nonlinear parameters of the chosen model (fit frame)
 
 
 @dataclass(frozen=True)

@@ -269,8 +269,10 @@ def _brute_force_patch(east, north, up, src, m=200):
     Surface SP (mV) of a patch as a sum of m×m point dipoles plus their images
     (on the surface the image doubles the full-space term: V = f/(2π)·Σ n·R/|R|³ dA)
     [Kellogg1929]_; conductivity contrast by the factor of physics.md §2.3.
-    Depths are below each station's own elevation (``up`` - ``ground_m`` added),
-    with the plane through the mapped trace point, as truth.json states.
+    Depths are below each station's own elevation (``up`` - ``ground_m`` added,
+    but never less than half the top depth: the model's rule for stations deep
+    below the patch datum), with the plane through the mapped trace point, as
+    truth.json states.
     """
     phi, dip = np.radians(src["strike_deg"]), np.radians(src["dip_deg"])
     s_hat = np.array([np.sin(phi), np.cos(phi), 0.0])
@@ -279,7 +281,7 @@ def _brute_force_patch(east, north, up, src, m=200):
     trace = np.array([src["top_x"], src["top_y"], 0.0]) - src["top_depth_m"] / np.tan(dip) * d_hat
     out = np.empty(len(east))
     for i, (e, n, u) in enumerate(zip(east, north, up)):
-        shift = u - src["ground_m"]
+        shift = max(u - src["ground_m"], -0.5 * src["top_depth_m"])
         w_top = (src["top_depth_m"] + shift) / np.sin(dip)
         w_bot = (src["bottom_depth_m"] + shift) / np.sin(dip)
         ds, dw = src["length_m"] / m, (w_bot - w_top) / m

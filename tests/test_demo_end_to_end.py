@@ -58,8 +58,8 @@ def test_detected_sources_sit_on_the_planted_faults_with_the_planted_sign(demo_r
 
 
 @pytest.mark.xfail(strict=True, reason="known gap: on the demo, P3 (conductivity contrast, F-West) is not "
-                   "detected, P1's bottom depth is unresolved (√(top·bottom) 65 % deep) and P2's top depth "
-                   "runs to its bound; see docs/demo-results.md")
+                   "detected, P1's bottom depth is unresolved (at its bound, so √(top·bottom) is far too "
+                   "deep) and P2's top depth is 21 % deep; see docs/demo-results.md")
 def test_planted_patches_recovered(demo_run):
     from demo_area.compare import compare_sources
 

@@ -15,6 +15,7 @@ import pytest
 from scipy import optimize
 
 from geosp.errors import OptionError
+from geosp import fit as fit_module
 from geosp.fit import fit_segment, fit_segments
 from geosp.models import Detection, FaultSegment, Stations
 from geosp.physics import fault_patch_sp, patch_sp_local, pole_pair_sp
@@ -209,7 +210,7 @@ def test_source_rows_have_contract_fields():
                 "rms_mv", "chi2_red", "n_stations", "bic_gain", "sigma_ratio", "flags"]
     extra = ["geo_mean_depth_m", "geo_mean_depth_sd_m", "jump_height_mv_m",
              "jump_height_sd_mv_m", "top_depth_sd_m", "bottom_depth_sd_m", "dip_sd_deg",
-             "jump_sd_mv", "length_sd_m", "location_sd_m"]
+             "jump_sd_mv", "length_sd_m", "location_sd_m", "ground_m"]
     (row,) = fit.sources
     assert list(row) == contract + extra
     assert row["source_id"] == "F1-1-P1" and isinstance(row["flags"], str)
@@ -351,9 +352,13 @@ def test_fit_segments_rejects_unknown_option_and_skips_sparse_segment():
     stations, detections = _two_segment_survey()
     with pytest.raises(OptionError, match="n_start .did you mean n_starts"):
         fit_segments(stations, detections, workers=1, n_start=16)
-    sparse = replace(detections[1], station_index=detections[1].station_index[:5])
+    # the second segment's window keeps 5 stations with readings
+    windows = fit_module._fit_windows(stations, detections, "auto")
+    blank = np.setdiff1d(windows[1], windows[0])[5:]
+    sp = np.array(stations.sp_mv, dtype=float)
+    sp[blank] = np.nan
     with pytest.warns(UserWarning, match="only 5 usable stations"):
-        result = fit_segments(stations, [detections[0], sparse], workers=1,
+        result = fit_segments(stations.replace(sp_mv=sp), detections, workers=1,
                               models=("fault_patch",), uncertainty="jacobian", **FAST)
     assert len(result.fits) == 1
 
@@ -434,3 +439,119 @@ def test_two_patches_along_strike_recovered():
         assert abs(row["geo_mean_depth_m"] - geo_mean) < 0.1 * geo_mean
         assert np.sign(row["jump_mv"]) == np.sign(truth["jump"])
         assert row["dip_deg"] == rows[0]["dip_deg"]  # shared dip
+
+
+# --------------------------------------------------------------------------------------
+# Terrain, fit windows across segment cuts, and interacting sources
+# --------------------------------------------------------------------------------------
+
+def _area_stations(xs, ys, values, elevation=None, noise_mv=1.0):
+    e, n = (a.ravel() for a in np.meshgrid(xs, ys))
+    up = np.zeros(e.size) if elevation is None else elevation(e, n)
+    data = values(e, n, up) + noise_mv * np.random.default_rng(7).standard_normal(e.size)
+    return Stations(np.array([f"S{i:05d}" for i in range(e.size)]), e, n, up, data,
+                    "EPSG:32633", sigma_mv=np.full(e.size, noise_mv))
+
+
+def _row_depths(row, ground):
+    """Top and sqrt(top·bottom) below a given ground level (the planted one)."""
+    shift = ground - row["ground_m"] if np.isfinite(row.get("ground_m", np.nan)) else 0.0
+    top, bottom = row["top_depth_m"] + shift, row["bottom_depth_m"] + shift
+    return top, np.sqrt(top * bottom)
+
+
+def test_terrain_held_patch_recovered_and_flat_datum_is_biased():
+    # Physics notes §2.5: depths below each station's own elevation. The data come
+    # from the world forward model with ground_m (an independent code path from
+    # the fit's local frame); relief 120 m over a 150 m top is 0.8 z_t.
+    segment = make_segment()
+    truth = dict(top_x=0.0, top_y=0.0, strike_deg=30.0, dip_deg=90.0, top_depth_m=150.0,
+                 bottom_depth_m=600.0, length_m=1500.0, jump_mv=100.0, ground_m=500.0)
+    truth["top_x"], truth["top_y"] = segment.to_world(1000.0, 0.0)
+
+    def hill(e, n):
+        s, t = segment.to_local(e, n)
+        return 500.0 + 120.0 * np.exp(-((t - 250.0) / 300.0) ** 2)
+
+    def values(e, n, up):
+        return 3.0 + fault_patch_sp((e, n, up), **truth)
+
+    s_grid = segment.to_world(np.linspace(100, 1900, 9)[:, None], np.arange(-1000, 1001, 25.0)[None, :])
+    stations = Stations(np.array([f"S{i:05d}" for i in range(s_grid[0].size)]),
+                        s_grid[0].ravel(), s_grid[1].ravel(), hill(s_grid[0].ravel(), s_grid[1].ravel()),
+                        values(s_grid[0].ravel(), s_grid[1].ravel(), hill(s_grid[0].ravel(), s_grid[1].ravel()))
+                        + np.random.default_rng(3).standard_normal(s_grid[0].size),
+                        "EPSG:32633", sigma_mv=np.ones(s_grid[0].size))
+    detection = Detection(segment, np.arange(len(stations)), len(stations), 12.0, 1, True, 4.0,
+                          1.0, {})
+    geo_true = np.sqrt(150.0 * 600.0)
+    (row,) = fit_segment(stations, detection, models=("fault_patch",), **FAST).sources
+    top, geo = _row_depths(row, truth["ground_m"])
+    assert abs(top - 150.0) < 0.2 * 150.0 and abs(geo - geo_true) < 0.1 * geo_true
+    assert "terrain" in row["flags"]
+    (flat,) = fit_segment(stations, detection, models=("fault_patch",), terrain=False,
+                          **FAST).sources
+    assert np.isnan(flat["ground_m"])
+    flat_top = flat["top_depth_m"] + (truth["ground_m"] - np.median(stations.upward))
+    # the flat datum misses by more than the terrain-held fit
+    assert abs(flat_top - 150.0) > abs(top - 150.0)
+
+
+def _two_cut_segments(length_each=1200.0, strike=0.0, origin=(0.0, 0.0), fault="FA"):
+    phi = np.radians(strike)
+    unit = np.array([np.sin(phi), np.cos(phi)])
+    a = np.asarray(origin, dtype=float)
+    b = a + length_each * unit
+    c = b + length_each * unit
+    return [FaultSegment(fault, f"{fault}-01", np.array([a, b]), strike, length_each,
+                         dip_deg=90.0, dip_known=True),
+            FaultSegment(fault, f"{fault}-02", np.array([b, c]), strike, length_each,
+                         dip_deg=90.0, dip_known=True)]
+
+
+def _detections(stations, segments, detected, corridor=600.0):
+    from geosp.segments import assign_points
+    owned = assign_points(stations.easting, stations.northing, segments, corridor_m=corridor)
+    return [Detection(seg, own, own.size, 20.0 if det else 1.0, 1, det, 5.0, 1.0,
+                      {"corridor_m": corridor}) for seg, own, det in zip(segments, owned, detected)]
+
+
+def test_source_across_a_segment_cut_is_fitted_whole():
+    # A fault cut into two collinear segments (a length split); the planted patch
+    # runs 700 m into each. The fit window follows the fault past the cut.
+    segments = _two_cut_segments()
+    truth = dict(top_x=0.0, top_y=1200.0, strike_deg=0.0, dip_deg=90.0, top_depth_m=150.0,
+                 bottom_depth_m=600.0, length_m=1400.0, jump_mv=100.0)
+    stations = _area_stations(np.arange(-1000, 1001, 25.0), np.arange(-400, 2801, 200.0),
+                              lambda e, n, up: 2.0 + fault_patch_sp((e, n), **truth))
+    detections = _detections(stations, segments, [True, False])
+    result = fit_segments(stations, detections, workers=1, models=("fault_patch",), **FAST)
+    (row,) = result.sources
+    assert abs(row["length_m"] - 1400.0) < 0.1 * 1400.0
+    assert abs(row["top_y"] - 1200.0) < 50.0
+    top, geo = _row_depths(row, 0.0)
+    assert abs(top - 150.0) < 0.2 * 150.0 and abs(geo - 300.0) < 0.1 * 300.0
+
+
+def test_interacting_sources_fitted_jointly():
+    # Two parallel faults 900 m apart, each with a strong patch: the flank of one
+    # lies in the other's window. Joint refinement recovers both; each row names
+    # its group.
+    seg_a = _two_cut_segments(2400.0, origin=(0.0, 0.0), fault="FA")[0]
+    seg_b = _two_cut_segments(2400.0, origin=(900.0, 0.0), fault="FB")[0]
+    truths = [dict(top_x=0.0, top_y=1200.0, strike_deg=0.0, dip_deg=90.0, top_depth_m=150.0,
+                   bottom_depth_m=900.0, length_m=1600.0, jump_mv=180.0),
+              dict(top_x=900.0, top_y=1100.0, strike_deg=0.0, dip_deg=90.0, top_depth_m=200.0,
+                   bottom_depth_m=700.0, length_m=1400.0, jump_mv=-150.0)]
+    stations = _area_stations(
+        np.arange(-1200, 2101, 25.0), np.arange(0, 2401, 200.0),
+        lambda e, n, up: 2.0 + 0.004 * e + sum(fault_patch_sp((e, n), **t) for t in truths))
+    detections = _detections(stations, [seg_a, seg_b], [True, True], corridor=600.0)
+    result = fit_segments(stations, detections, workers=1, models=("fault_patch",), **FAST)
+    assert len(result.sources) == 2
+    for row, truth in zip(sorted(result.sources, key=lambda r: r["top_x"]), truths):
+        assert row["joint_group"] == "FA-01,FB-01"
+        top, geo = _row_depths(row, 0.0)
+        geo_true = np.sqrt(truth["top_depth_m"] * truth["bottom_depth_m"])
+        assert abs(top - truth["top_depth_m"]) < 0.2 * truth["top_depth_m"]
+        assert abs(geo - geo_true) < 0.1 * geo_true

@@ -63,8 +63,8 @@ def patch_sp_local(along, across, *, centre_m, length_m, depth_top_m, depth_bott
         terrain error near 1 % of the peak for broad relief of height 0.2·z_t
         and 4 % for 0.5·z_t (against 8 % and 18 % for a flat datum); relief
         above 0.2·z_t or slopes above about 15° deserve 5–10 % model error.
-        The shifted top depth must stay positive (not checked here, for
-        speed): a station below the patch top is outside the model.
+        Offsets below −½·``depth_top_m`` are raised to it (see
+        :func:`effective_depth_offset`).
 
     Returns
     -------
@@ -83,7 +83,7 @@ def patch_sp_local(along, across, *, centre_m, length_m, depth_top_m, depth_bott
     """
     along = np.asarray(along, dtype=float)
     across = np.asarray(across, dtype=float)
-    offset = np.asarray(depth_offset_m, dtype=float)
+    offset = effective_depth_offset(depth_offset_m, depth_top_m)
     top = np.asarray(depth_top_m + offset, dtype=float)
     bottom = np.asarray(depth_bottom_m + offset, dtype=float)
     if not _fast.AVAILABLE:
@@ -103,6 +103,33 @@ def patch_sp_local(along, across, *, centre_m, length_m, depth_top_m, depth_bott
         math.radians(dip_deg), float(jump_mv), hw, fw, out.reshape(-1),
     )
     return out
+
+
+def effective_depth_offset(depth_offset_m, depth_top_m):
+    """
+    Per-station depth offsets (m) as the patch kernels use them.
+
+    A station lower than the patch datum by more than half the top depth
+    (a deep valley beside the patch) would put the top edge above it,
+    outside the half-space model; its offset is raised to −½·z_t, so that
+    the shifted top depth is never less than half the datum's.
+
+    Parameters
+    ----------
+    depth_offset_m : float or array
+        Station elevation minus the datum of the depths (m).
+    depth_top_m : float or array
+        Top depth below the datum (m, positive).
+
+    Returns
+    -------
+    offset : numpy.ndarray
+        ``max(depth_offset_m, −depth_top_m/2)``.
+    """
+    offset = np.asarray(depth_offset_m, dtype=float)
+    if offset.ndim == 0 and offset == 0.0:
+        return offset
+    return np.maximum(offset, -0.5 * np.asarray(depth_top_m, dtype=float))
 
 
 def _flat(values, shape):

@@ -10,7 +10,7 @@ import math
 import numpy as np
 
 from . import _fast, _kernels
-from .forward import _contrast_factors, _flat, _flat_depth
+from .forward import _contrast_factors, _flat, _flat_depth, effective_depth_offset
 
 _DEG = math.pi / 180.0
 
@@ -60,11 +60,23 @@ def patch_sp_local_jacobian(along, across, *, centre_m, length_m, depth_top_m,
     """
     along = np.asarray(along, dtype=float)
     across = np.asarray(across, dtype=float)
-    offset = np.asarray(depth_offset_m, dtype=float)
-    dip = math.radians(dip_deg)
+    raw = np.asarray(depth_offset_m, dtype=float)
+    offset = effective_depth_offset(raw, depth_top_m)
+    sp, jac = _jacobian_at(along, across, centre_m, length_m, depth_top_m + offset,
+                           depth_bottom_m + offset, math.radians(dip_deg), jump_mv, sigma_ratio)
+    if raw.ndim:
+        # raised offsets follow the top depth: shifted top ½z_t, bottom z_b − ½z_t
+        raised = np.broadcast_to(raw < -0.5 * np.asarray(depth_top_m, dtype=float), sp.shape)
+        if raised.any():
+            jac[..., 2] = np.where(raised, 0.5 * (jac[..., 2] - jac[..., 3]), jac[..., 2])
+    return sp, jac
+
+
+def _jacobian_at(along, across, centre_m, length_m, top, bottom, dip, jump_mv, sigma_ratio):
+    """SP and Jacobian for final (shifted) depths; dip in radians."""
     if _fast.AVAILABLE:
-        top = np.asarray(depth_top_m + offset, dtype=float)
-        bottom = np.asarray(depth_bottom_m + offset, dtype=float)
+        top = np.asarray(top, dtype=float)
+        bottom = np.asarray(bottom, dtype=float)
         shape = np.broadcast_shapes(along.shape, across.shape, top.shape, bottom.shape)
         hw, fw = _contrast_factors(sigma_ratio)
         sp = np.empty(shape)
@@ -76,8 +88,7 @@ def patch_sp_local_jacobian(along, across, *, centre_m, length_m, depth_top_m,
         )
         jac[..., 4] *= _DEG
         return sp, jac
-    return _patch_sp_local_jacobian_numpy(along, across, centre_m, length_m,
-                                          depth_top_m + offset, depth_bottom_m + offset,
+    return _patch_sp_local_jacobian_numpy(along, across, centre_m, length_m, top, bottom,
                                           dip, jump_mv, sigma_ratio)
 
 
@@ -124,7 +135,7 @@ def patch_sp_gradient(along, across, *, centre_m, length_m, depth_top_m, depth_b
     along, across, up = np.broadcast_arrays(
         np.asarray(along, float), np.asarray(across, float), np.asarray(up_m, float)
     )
-    offset = np.asarray(depth_offset_m, dtype=float)
+    offset = effective_depth_offset(depth_offset_m, depth_top_m)
     top = np.asarray(depth_top_m + offset, dtype=float)[..., None]
     bottom = np.asarray(depth_bottom_m + offset, dtype=float)[..., None]
     dip = math.radians(dip_deg)

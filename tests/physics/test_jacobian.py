@@ -40,6 +40,15 @@ CASES = [
 ]
 
 
+def _check_against_differences(params, along, across, jac):
+    """Every Jacobian column against central differences of the forward model."""
+    for column, name in enumerate(JACOBIAN_PARAMETERS):
+        step = 1e-5 if name == "dip_deg" else 1e-3
+        numeric = central_difference(params, name, along, across, step)
+        npt.assert_allclose(jac[:, column], numeric, rtol=1e-6,
+                            atol=1e-9 * np.abs(numeric).max(), err_msg=name)
+
+
 @pytest.mark.parametrize("case", range(len(CASES)))
 def test_jacobian_matches_central_differences(case):
     # Steps of about 1e-6 of the geometry scale (1e-3 m; 1e-5 degree):
@@ -51,24 +60,30 @@ def test_jacobian_matches_central_differences(case):
     sp, jac = patch_sp_local_jacobian(along, across, **params)
     assert jac.shape == (along.size, 5)
     npt.assert_allclose(sp, patch_sp_local(along, across, **params), rtol=1e-12, atol=1e-15)
-    for column, name in enumerate(JACOBIAN_PARAMETERS):
-        step = 1e-5 if name == "dip_deg" else 1e-3
-        numeric = central_difference(params, name, along, across, step)
-        npt.assert_allclose(jac[:, column], numeric, rtol=1e-6,
-                            atol=1e-9 * np.abs(numeric).max(), err_msg=name)
+    _check_against_differences(params, along, across, jac)
 
 
 def test_jacobian_with_per_station_depth_offsets():
     # Terrain offsets shift both depths per station; the derivatives with
     # respect to the reference depths are unchanged in form.
-    params = dict(CASES[1], depth_offset_m=np.linspace(-40, 60, 60))
+    params = dict(CASES[1], depth_offset_m=np.linspace(-39, 60, 60))
     along, across = stations(9)
     _, jac = patch_sp_local_jacobian(along, across, **params)
-    for column, name in enumerate(JACOBIAN_PARAMETERS):
-        step = 1e-5 if name == "dip_deg" else 1e-3
-        numeric = central_difference(params, name, along, across, step)
-        npt.assert_allclose(jac[:, column], numeric, rtol=1e-6,
-                            atol=1e-9 * np.abs(numeric).max(), err_msg=name)
+    _check_against_differences(params, along, across, jac)
+
+
+def test_offsets_below_half_the_top_depth_are_raised_consistently():
+    # Stations more than z_t/2 below the datum see the patch as if z_t/2 below
+    # it; value and derivatives (central differences) follow that rule.
+    top = CASES[1]["depth_top_m"]
+    low = np.linspace(-2.0 * top, -0.6 * top, 60)
+    along, across = stations(9)
+    params = dict(CASES[1], depth_offset_m=low)
+    npt.assert_allclose(patch_sp_local(along, across, **params),
+                        patch_sp_local(along, across, **dict(CASES[1], depth_offset_m=-0.5 * top)),
+                        rtol=1e-12)
+    _, jac = patch_sp_local_jacobian(along, across, **params)
+    _check_against_differences(params, along, across, jac)
 
 
 @pytest.mark.parametrize("case", range(len(CASES)))
