@@ -1267,8 +1267,8 @@ def _window_polygon(segment, station_index, stations):
 def _interaction_groups(stations, fits, accepted):
     """Groups (lists of fit indices, two or more) of accepted patch fits with overlapping windows."""
     patch = [i for i in accepted if fits[i].chosen in ("fault_patch", "two_patches")]
-    hulls = {i: _window_polygon(fits[i].segment, fits[i].station_index, stations)
-             for i in patch}
+    windows = {i: _window_polygon(fits[i].segment, fits[i].station_index, stations)
+               for i in patch}
     parent = {i: i for i in patch}
 
     def root(i):
@@ -1277,10 +1277,12 @@ def _interaction_groups(stations, fits, accepted):
             i = parent[i]
         return i
 
-    for a, i in enumerate(patch):
-        for j in patch[a + 1:]:
-            if hulls[i].intersects(hulls[j]):
-                parent[root(j)] = root(i)
+    if patch:
+        polygons = [windows[i] for i in patch]
+        left, right = shapely.STRtree(polygons).query(polygons, predicate="intersects")
+        for a, b in zip(left, right):
+            if a < b:
+                parent[root(patch[b])] = root(patch[a])
     groups = {}
     for i in patch:
         groups.setdefault(root(i), []).append(i)
