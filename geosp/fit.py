@@ -1415,7 +1415,7 @@ def _refine_group(item, options):
             fields[k, used] = m.basis(parts[k]) @ best["x"][cs]
         total = fields.sum(axis=0)
         out = []
-        for k, (setup, (det, _chosen, _params, ambiguities)) in enumerate(zip(setups, members)):
+        for k, (det, _chosen, _params, ambiguities) in enumerate(members):
             background = (total - fields[k])[det.station_index]
             start_k = (current[k][0], parts[k]) if k in parts else None
             fit = _fit_segment(stations, det, options, background=background, start=start_k)
