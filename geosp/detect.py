@@ -49,6 +49,8 @@ _K_POLE_PAIR = 3 + 1 + 5
 #: up the decoy set when too few have as many (a footprint aligned with the
 #: survey lines catches whole lines at its edges, a rotated copy rarely does).
 _PARTIAL_FRACTION = 0.8
+#: Most rounds of scoring undetected segments again with detected anomalies removed.
+_DEFLATION_ROUNDS = 3
 #: Anomaly footprint of a segment for the shared-anomaly rule, as a fraction
 #: of the corridor (half-width and end extension).
 _FOOTPRINT = 0.5
@@ -59,7 +61,8 @@ _SHARED_FRACTION = 0.5
 
 def detect_dipoles(stations, segments, *, corridor_m="auto",
                    template_top_depths_m=(50.0, 100.0, 200.0, 400.0),
-                   template_height_ratios=(2.0, 4.0), false_alarm_rate=0.01,
+                   template_height_ratios=(2.0, 4.0), template_sigma_ratios=(1.0, 0.25, 4.0),
+                   false_alarm_rate=0.01,
                    n_decoys=200, min_score=4.0, cultural_max_depth_m=50.0, seed=0,
                    progress=None):
     """
@@ -82,6 +85,11 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
         Depths of the template patch tops (m). Default 50, 100, 200, 400.
     template_height_ratios : list of float
         Template bottom depth over top depth. Default 2 and 4.
+    template_sigma_ratios : list of float
+        Conductivity ratios across the fault (dip-direction side over the
+        other) of the templates: a contrast makes one lobe of the anomaly
+        stronger than the other (docs/concepts.md). Default 1, 1/4 and 4;
+        ``[1.0]`` for uniform conductivity only.
     false_alarm_rate : float
         Fraction of source-free segments allowed to be detected; sets the
         decoy quantile (1 − rate). Default 0.01.
@@ -127,6 +135,14 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
     threshold absorbs correlated (geological) noise and the maximum over
     templates.
 
+    Deflation: decoys that land on a strong anomaly inflate the threshold of
+    every segment in a small survey. So once segments are detected, the
+    fields of their best templates (over all stations) are subtracted and
+    the undetected segments are scored again, decoys included, on what
+    remains; this repeats while new segments are detected (at most
+    ``_DEFLATION_ROUNDS`` times). A segment's own score never has its own
+    template removed.
+
     References
     ----------
     * [Telford1990]_ (pole pair)
@@ -135,8 +151,9 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
     """
     depths = np.asarray(template_top_depths_m, dtype=float).ravel()
     ratios = np.asarray(template_height_ratios, dtype=float).ravel()
-    _check_options(depths, ratios, false_alarm_rate, n_decoys, min_score, cultural_max_depth_m,
-                   corridor_m, seed)
+    contrasts = np.asarray(template_sigma_ratios, dtype=float).ravel()
+    _check_options(depths, ratios, contrasts, false_alarm_rate, n_decoys, min_score,
+                   cultural_max_depth_m, corridor_m, seed)
     segments = tuple(segments)
     valid = np.isfinite(stations.sp_mv) & np.isfinite(stations.easting) \
         & np.isfinite(stations.northing) & (np.asarray(stations.weight, dtype=float) > 0)
@@ -148,29 +165,65 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
         corridor = float(corridor_m)
     owned = assign_points(data.easting, data.northing, segments, corridor_m=corridor)
     fault_tree = _fault_tree(segments, corridor)
+
+    def score(j, values):
+        if owned[j].size < _MIN_STATIONS:
+            return _unscored(segments[j], data.index[owned[j]])
+        setup = _SegmentSetup(segments[j], owned[j], data, corridor, depths, ratios, contrasts,
+                              int(n_decoys), fault_tree, np.random.default_rng([int(seed), j]))
+        return _detect_segment(setup, values, data, false_alarm_rate, float(min_score),
+                               float(cultural_max_depth_m))
+
     detections = []
-    for j, segment in enumerate(segments):
-        rng = np.random.default_rng([int(seed), j])
-        detections.append(_detect_segment(
-            segment, owned[j], data, corridor, depths, ratios,
-            false_alarm_rate, int(n_decoys), float(min_score), float(cultural_max_depth_m),
-            fault_tree, rng,
-        ))
+    for j in range(len(segments)):
+        detections.append(score(j, data.data))
         if progress is not None:
             progress(j + 1, len(segments))
-    return tuple(_resolve_shared(detections, stations, valid_index, corridor))
+    detections = _resolve_shared(detections, stations, valid_index, corridor)
+    removed = set()
+    for _ in range(_DEFLATION_ROUNDS):
+        kept = [j for j, d in enumerate(detections) if d.detected and j not in removed]
+        if not kept:
+            break
+        removed.update(kept)
+        field = sum(_template_field(detections[j], data) for j in sorted(removed))
+        names = ", ".join(detections[j].segment.segment_id for j in sorted(removed))
+        again = [j for j, d in enumerate(detections)
+                 if not d.detected and np.isfinite(d.score) and "shares its anomaly" not in d.note]
+        for j in again:
+            d = score(j, data.data - field)
+            detections[j] = replace(d, note=f"{d.note}; scored with the anomalies of {names} removed")
+        detections = _resolve_shared(detections, stations, valid_index, corridor)
+        if not any(detections[j].detected for j in again):
+            break
+    return tuple(detections)
+
+
+def _template_field(detection, data):
+    """The best template of a detected segment times its amplitude, at every valid station (mV)."""
+    t = detection.best_template
+    segment = detection.segment
+    along, across = segment.to_local(data.easting, data.northing)
+    unit = forward.patch_sp_local(
+        along, across, centre_m=segment.length_m / 2.0, length_m=segment.length_m,
+        depth_top_m=t["depth_top_m"], depth_bottom_m=t["depth_bottom_m"], dip_deg=t["dip_deg"],
+        sigma_ratio=t["sigma_ratio"])
+    return t["jump_mv"] * np.asarray(unit, dtype=float)
 
 
 # --------------------------------------------------------------------------- options
 
 
-def _check_options(depths, ratios, false_alarm_rate, n_decoys, min_score, cultural_max_depth_m,
+def _check_options(depths, ratios, contrasts, false_alarm_rate, n_decoys, min_score,
+                   cultural_max_depth_m,
                    corridor_m, seed):
     problems = []
     if depths.size == 0 or not np.all(np.isfinite(depths) & (depths > 0)):
         problems.append(("template_top_depths_m", "must be a list of positive depths in m"))
     if ratios.size == 0 or not np.all(np.isfinite(ratios) & (ratios > 1)):
         problems.append(("template_height_ratios", "must be a list of ratios above 1"))
+    if contrasts.size == 0 or not np.all(np.isfinite(contrasts) & (contrasts > 0)):
+        problems.append(("template_sigma_ratios", "must be a list of positive conductivity ratios"))
     if not 0 < false_alarm_rate < 1:
         problems.append(("false_alarm_rate", "must lie between 0 and 1 (e.g. 0.01)"))
     if not isinstance(seed, (int, np.integer)) or seed < 0:
@@ -296,27 +349,27 @@ def _fault_tree(segments, corridor):
 # --------------------------------------------------------------------------- templates
 
 
-def _templates(segment, depths, ratios):
-    """List of (depth_top_m, depth_bottom_m, dip_deg) for a segment."""
+def _templates(segment, depths, ratios, contrasts):
+    """List of (depth_top_m, depth_bottom_m, dip_deg, sigma_ratio) for a segment."""
     dips = [90.0]
     dip = segment.dip_deg
     if segment.dip_known and np.isfinite(dip) and 0 < dip < 90:
         dips = [float(dip), 90.0]
-    return [(float(z), float(z * r), d) for d in dips for z in depths for r in ratios]
+    return [(float(z), float(z * r), d, float(c))
+            for d in dips for c in contrasts for z in depths for r in ratios]
 
 
 def _template_matrix(along, across, length, templates):
     """(N, M) unit-jump template values (mV per mV of jump) at the stations."""
     out = np.empty((along.size, len(templates)))
-    dips = sorted({t[2] for t in templates})
     columns = {}
-    for dip in dips:
-        idx = [m for m, t in enumerate(templates) if t[2] == dip]
+    for dip, contrast in sorted({t[2:] for t in templates}):
+        idx = [m for m, t in enumerate(templates) if t[2:] == (dip, contrast)]
         top = np.array([templates[m][0] for m in idx])[None, :]
         bottom = np.array([templates[m][1] for m in idx])[None, :]
         block = forward.patch_sp_local(
             along[:, None], across[:, None], centre_m=length / 2.0, length_m=length,
-            depth_top_m=top, depth_bottom_m=bottom, dip_deg=dip,
+            depth_top_m=top, depth_bottom_m=bottom, dip_deg=dip, sigma_ratio=contrast,
         )
         columns.update(zip(idx, np.asarray(block).reshape(along.size, len(idx)).T))
     for m in range(len(templates)):
@@ -497,11 +550,14 @@ class _SegmentSetup:
     local coordinates and templates of its stations and of its decoys.
     """
 
-    def __init__(self, segment, pos, data, corridor, depths, ratios, n_decoys, fault_tree, rng):
+    def __init__(self, segment, pos, data, corridor, depths, ratios, contrasts, n_decoys,
+                 fault_tree, rng):
         self.segment = segment
         self.pos = pos
         self.n = int(pos.size)
-        self.templates = _templates(segment, depths, ratios)
+        self.corridor = corridor
+        self.n_decoys_wanted = n_decoys
+        self.templates = _templates(segment, depths, ratios, contrasts)
         length = segment.length_m
         self.along, self.across = segment.to_local(data.easting[pos], data.northing[pos])
         self.columns = _template_matrix(self.along, self.across, length, self.templates)
@@ -542,18 +598,21 @@ def _threshold(decoy_scores, false_alarm_rate, min_score):
     return max(float(min_score), quantile), quantile
 
 
-def _detect_segment(segment, pos, data, corridor, depths, ratios, false_alarm_rate,
-                    n_decoys, min_score, cultural_max_depth_m, fault_tree, rng):
+def _unscored(segment, index):
+    n = int(index.size)
+    return Detection(
+        segment=segment, station_index=index, n_stations=n, score=np.nan, polarity=0,
+        detected=False, threshold=np.nan, noise_mv=np.nan, best_template={},
+        note=f"too few stations ({n}; at least {_MIN_STATIONS} needed)",
+    )
+
+
+def _detect_segment(setup, values, data, false_alarm_rate, min_score, cultural_max_depth_m):
+    """Detection of one segment from its setup and the station values (mV, valid stations)."""
+    segment, pos, corridor, n_decoys = setup.segment, setup.pos, setup.corridor, setup.n_decoys_wanted
     index = data.index[pos]
     n = int(index.size)
-    if n < _MIN_STATIONS:
-        return Detection(
-            segment=segment, station_index=index, n_stations=n, score=np.nan, polarity=0,
-            detected=False, threshold=np.nan, noise_mv=np.nan, best_template={},
-            note=f"too few stations ({n}; at least {_MIN_STATIONS} needed)",
-        )
-    setup = _SegmentSetup(segment, pos, data, corridor, depths, ratios, n_decoys, fault_tree, rng)
-    real, decoy_scores = setup.score(data.data, data.weight, data.read_var)
+    real, decoy_scores = setup.score(values, data.weight, data.read_var)
     score = float(real["score"][0])
     best = int(real["best"][0])
     threshold, quantile = _threshold(decoy_scores, false_alarm_rate, min_score)
@@ -572,9 +631,9 @@ def _detect_segment(segment, pos, data, corridor, depths, ratios, false_alarm_ra
     detected = bool(score > threshold)
     relation = ">" if detected else "≤"
     note = f"score {score:.1f} {relation} threshold {threshold:.1f} ({how})"
-    z_t, z_b, dip = setup.templates[best]
+    z_t, z_b, dip, contrast = setup.templates[best]
     best_template = {
-        "depth_top_m": z_t, "depth_bottom_m": z_b, "dip_deg": dip,
+        "depth_top_m": z_t, "depth_bottom_m": z_b, "dip_deg": dip, "sigma_ratio": contrast,
         "jump_mv": float(real["amplitude"][0]),
         "jump_sigma_mv": float(real["amplitude_sigma"][0]),
         "corridor_m": float(corridor),
@@ -582,7 +641,7 @@ def _detect_segment(segment, pos, data, corridor, depths, ratios, false_alarm_ra
     polarity = 1 if real["amplitude"][0] >= 0 else -1
     cultural = False
     if detected:
-        gain = _pole_pair_gain(segment, setup.along, setup.across, data.data[pos],
+        gain = _pole_pair_gain(segment, setup.along, setup.across, values[pos],
                                real["weights"], float(real["chi2"][0]), cultural_max_depth_m,
                                data.spacing)
         best_template["pole_pair_delta_bic"] = gain

@@ -395,7 +395,18 @@ class _Problem:
 # Helpers
 # --------------------------------------------------------------------------------------
 
-def _check_options(models, n_starts, n_local, uncertainty, dip_range_deg, huber_passes):
+def _fit_ratio(option, detection):
+    """Whether the conductivity ratio is a free parameter (``fit_sigma_ratio``)."""
+    if option == "auto":
+        return float((detection.best_template or {}).get("sigma_ratio", 1.0)) != 1.0
+    return bool(option)
+
+
+def _check_options(models, n_starts, n_local, uncertainty, dip_range_deg, huber_passes,
+                   fit_sigma_ratio):
+    if not (fit_sigma_ratio == "auto" or isinstance(fit_sigma_ratio, (bool, np.bool_))):
+        raise OptionError("[fit] fit_sigma_ratio", f"got {fit_sigma_ratio!r}.",
+                          'Use true, false or "auto".')
     unknown = [m for m in models if m not in _MODELS]
     if unknown:
         raise OptionError("[fit] models", f"unknown model(s) {unknown}.",
@@ -497,7 +508,7 @@ def _station_spacing(s, t):
 
 def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
                 uncertainty="profile", huber=True, huber_passes=4, dip_range_deg=(30.0, 90.0),
-                fit_sigma_ratio=False, max_trace_offset_m=0.0, min_bic_gain=10.0,
+                fit_sigma_ratio="auto", max_trace_offset_m=0.0, min_bic_gain=10.0,
                 terrain=True, mcmc_steps=1500, mcmc_walkers=32, seed=0):
     """
     Fit fault-patch sources (and rival models) to the stations of one segment.
@@ -547,9 +558,11 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
         segment's dip direction is known; otherwise the dip δ′ is searched
         in [low, 180 − low] from the +t side and reported with the
         contract's sign rule. Default [30, 90].
-    fit_sigma_ratio : bool
+    fit_sigma_ratio : bool or "auto"
         Fit the conductivity ratio across the fault (dip-direction side over
-        the other side, 0.1–10), exact for vertical faults only. Default False.
+        the other side, 0.1–10), exact for vertical faults only. "auto": fit
+        it when the segment's best detection template has a contrast (one
+        lobe of the anomaly stronger than the other). Default "auto".
     max_trace_offset_m : float
         Fit a shift of the trace across strike up to this many metres
         (0 = trace fixed at the mapped position). Default 0.
@@ -661,7 +674,7 @@ class _Setup:
             "height": (z_min, max(4.0 * half, 3.0 * z_min)),
             "dip": (dip_lo, dip_hi),
             "offset": float(options["max_trace_offset_m"]),
-            "fit_ratio": bool(options["fit_sigma_ratio"]),
+            "fit_ratio": _fit_ratio(options["fit_sigma_ratio"], detection),
             "pole_depth": (z_min, max(_POLE_MAX_DEPTH, 2.0 * z_min)),
             "s_span": (float(s.min()), float(s.max())),
             "t_span": (float(t.min()), float(t.max())),
@@ -684,7 +697,7 @@ def _fit_segment(stations, detection, options, background=None, start=None):
     models = options["models"]
     models = (models,) if isinstance(models, str) else tuple(models)
     _check_options(models, options["n_starts"], options["n_local"], options["uncertainty"],
-                   options["dip_range_deg"], options["huber_passes"])
+                   options["dip_range_deg"], options["huber_passes"], options["fit_sigma_ratio"])
     setup = _Setup(stations, detection, options, background)
     segment, index, used, n = setup.segment, setup.index, setup.used, setup.n
     s, t, d, sig, w0, data = setup.s, setup.t, setup.d, setup.sig, setup.w0, setup.data

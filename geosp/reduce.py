@@ -53,6 +53,9 @@ from geosp.models import Reduction
 _MODES = ("auto", "leapfrog", "fixed_lead")
 _DOWNWEIGHT = 1e6  # variance multiplier of a leg found to be a blunder
 _MAX_SNOOP = 20  # at most this many blunders are down-weighted, one per solve
+# A reading this many robust standard deviations (1.4826 MAD) away from the running median of
+# its line's readings stands out (the outlier rule of common practice, applied to gradients).
+_READING_OUTLIER_Z = 4.0
 _SAME_PLACE_M = 5.0  # repeated station ids farther apart than this get a warning
 _DECISIVE_CHI2 = 10.0  # mode "auto" picks a mode only when loop chi2 differ by more than this
 
@@ -657,8 +660,56 @@ def _adjust_with_snooping(n, f, t, obs, variance, ref, line, blunder_sigma, wind
         var[pick] *= _DOWNWEIGHT
         n_down += 1
         res = adjust_network(n, f, t, obs, var, ref)
-    return {"first": first, "final": res, "leg_flag": flag, "n_down": n_down,
+    res, n_local = _snoop_single_readings(n, f, t, obs, var, ref, line, res, first, flag,
+                                          blunder_sigma, window, _MAX_SNOOP - n_down)
+    return {"first": first, "final": res, "leg_flag": flag, "n_down": n_down + n_local,
             "threshold": threshold}
+
+
+def _snoop_single_readings(n, f, t, obs, var, ref, line, res, first, flag, blunder_sigma, window,
+                           budget):
+    """
+    Blunders below the network-wide threshold, located by two independent signs.
+
+    A chain whose standardized residual is still above ``blunder_sigma`` (but
+    below the Bonferroni level, so the network test alone cannot name it) is
+    taken to hold a blunder when (1) one of its readings stands out from its
+    neighbours along the line by more than ``_READING_OUTLIER_Z`` robust
+    standard deviations and (2) down-weighting that one reading brings the
+    chain's standardized residual below ``blunder_sigma``. Otherwise the
+    chain stays "suspect". ``var`` and ``flag`` are updated in place;
+    returns the final adjustment and the number of legs down-weighted.
+    """
+    anomaly = _gradient_anomaly(obs, line, window)
+    scale = np.zeros(len(obs))
+    for idx in pd.Series(np.arange(len(obs))).groupby(np.asarray(line)).indices.values():
+        scale[idx] = 1.4826 * np.median(anomaly[idx])
+    tried, n_down = set(), 0
+    while n_down < budget:
+        w = np.abs(res["std_residual"])
+        w[flag != ""] = np.nan
+        chain = res["edge_chain"]
+        open_ = np.isfinite(w) & (w > blunder_sigma) & ~np.isin(chain, list(tried))
+        if not open_.any():
+            break
+        worst = int(np.flatnonzero(open_)[np.argmax(w[open_])])
+        tried.add(int(chain[worst]))
+        same = np.flatnonzero((chain == chain[worst]) & (flag == ""))
+        pick = int(same[np.argmax(anomaly[same])])
+        if not anomaly[pick] > _READING_OUTLIER_Z * scale[pick]:
+            continue
+        trial_var = var.copy()
+        trial_var[pick] *= _DOWNWEIGHT
+        trial = adjust_network(n, f, t, obs, trial_var, ref)
+        rest = np.abs(trial["std_residual"][same[same != pick]])
+        if rest.size and np.nanmax(rest, initial=0.0) > blunder_sigma:
+            continue
+        var[pick] = trial_var[pick]
+        flag[pick] = (f"blunder: {anomaly[pick]:.1f} mV off its neighbours, in a chain misclosing "
+                      f"at standardized residual {first['std_residual'][pick]:+.1f}; down-weighted")
+        res = trial
+        n_down += 1
+    return res, n_down
 
 
 def _running_median(values, window):

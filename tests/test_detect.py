@@ -52,7 +52,8 @@ def test_projection_equals_dense_weighted_lstsq():
     across = rng.uniform(-900, 900, n)
     data = rng.normal(0, 10, n) + 0.01 * along
     weights = rng.uniform(0.2, 3.0, n)
-    cols = detect._template_matrix(along, across, 1500.0, [(100.0, 400.0, 90.0), (50.0, 200.0, 70.0)])
+    cols = detect._template_matrix(along, across, 1500.0,
+                                   [(100.0, 400.0, 90.0, 1.0), (50.0, 200.0, 70.0, 4.0)])
     starts = np.cumsum([0] + sizes[:-1])
     gpg, gpd, dpd = detect._project(cols, along, across, data, weights, starts)
     for g, (a, b) in enumerate(zip(starts, np.append(starts[1:], n))):
@@ -133,7 +134,7 @@ def test_public_amplitude_equals_weighted_lstsq_of_the_best_template(planted):
     bt = d.best_template
     g = patch_sp_local(s, t, centre_m=d.segment.length_m / 2, length_m=d.segment.length_m,
                        depth_top_m=bt["depth_top_m"], depth_bottom_m=bt["depth_bottom_m"],
-                       dip_deg=bt["dip_deg"])
+                       dip_deg=bt["dip_deg"], sigma_ratio=bt["sigma_ratio"])
     sw = np.sqrt(st.weight)
     design = np.column_stack([g, np.ones_like(s), s, t]) * sw[:, None]
     coef = np.linalg.lstsq(design, st.sp_mv * sw, rcond=None)[0]
@@ -144,6 +145,74 @@ def test_public_amplitude_equals_weighted_lstsq_of_the_best_template(planted):
     s2 = resid @ resid / (s.size - 4)
     cov = s2 * np.linalg.inv(design.T @ design)
     npt.assert_allclose(d.score, abs(coef[0]) / np.sqrt(cov[0, 0]), rtol=1e-8)
+
+
+def test_conductivity_contrast_template_matches_a_one_sided_anomaly():
+    # A vertical patch with conductivity ratio 4 across the fault: the potential
+    # is 2σ_other/(σ1+σ2) times the uniform one on each side (physics notes §2.3,
+    # the forward kernel), so one lobe is 4 times the other. By matched-filter
+    # theory the template of the same shape gives the largest score, so the
+    # ratio-4 template must win, and must score above the uniform family alone.
+    rng = np.random.default_rng(5)
+    east, north = _line_survey(3000.0, 25.0, 200.0)
+    faults = (Fault("F1", np.array([[0.0, -900.0], [0.0, 900.0]])),)
+    segments = make_segments(faults, station_spacing_m=25.0)
+    s, t = segments[0].to_local(east, north)
+    sp = patch_sp_local(s, t, centre_m=900.0, length_m=1800.0, depth_top_m=100.0,
+                        depth_bottom_m=400.0, dip_deg=90.0, jump_mv=-60.0, sigma_ratio=4.0)
+    stations = _stations(east, north, sp + _regional(east, north) + rng.normal(0, 3.0, east.size))
+    options = dict(template_top_depths_m=[50.0, 100.0, 200.0], n_decoys=40)
+    (with_contrast,) = detect_dipoles(stations, segments, **options)
+    (uniform,) = detect_dipoles(stations, segments, template_sigma_ratios=[1.0], **options)
+    assert with_contrast.best_template["sigma_ratio"] == 4.0
+    assert uniform.best_template["sigma_ratio"] == 1.0
+    assert with_contrast.score > 1.2 * uniform.score, (with_contrast.score, uniform.score)
+
+
+def _two_faults(jump_west, seed):
+    """A strong patch (−400 mV) on F1 and a patch of ``jump_west`` mV on F2, 1.8 km west."""
+    east, north = _line_survey(3000.0, 25.0, 200.0)
+    faults = (Fault("F1", np.array([[0.0, -900.0], [0.0, 900.0]])),
+              Fault("F2", np.array([[-1800.0, -900.0], [-1800.0, 900.0]])))
+    segments = make_segments(faults, station_spacing_m=25.0)
+    sp = np.zeros(east.size)
+    for segment, jump in zip(segments, (-400.0, jump_west)):
+        s, t = segment.to_local(east, north)
+        sp += patch_sp_local(s, t, centre_m=900.0, length_m=1800.0, depth_top_m=100.0,
+                             depth_bottom_m=400.0, dip_deg=90.0, jump_mv=jump)
+    rng = np.random.default_rng(seed)
+    noise = rng.normal(0.0, 5.0, east.size)
+    return _stations(east, north, sp + _regional(east, north) + noise), segments
+
+
+def test_detected_anomalies_are_removed_before_scoring_the_rest(monkeypatch):
+    # In a small survey many decoys catch the strong F1 anomaly and inflate the
+    # threshold of F2. Once F1 is detected its template field is removed and F2
+    # is scored again: the threshold falls back to what the noise supports
+    # and the −40 mV patch on F2 is found. Without that step it is missed.
+    stations, segments = _two_faults(-40.0, seed=1)
+    options = dict(template_top_depths_m=[50.0, 100.0, 200.0], seed=1)
+    strong, weak = detect_dipoles(stations, segments, **options)
+    assert strong.detected and weak.detected, weak.note
+    assert "with the anomalies of F1-01 removed" in weak.note
+    monkeypatch.setattr(detect, "_DEFLATION_ROUNDS", 0)
+    _, plain = detect_dipoles(stations, segments, **options)
+    assert not plain.detected, plain.note
+    assert weak.threshold < 0.5 * plain.threshold
+
+
+@pytest.mark.slow
+def test_source_free_fault_beside_a_strong_anomaly_keeps_its_false_alarm_rate():
+    # 40 noise realizations, F2 without a source, scored after F1's anomaly is
+    # removed: at the 1 % false-alarm rate, 3 or more detections out of 40 have
+    # binomial probability below 1 % (scipy.stats.binom).
+    hits = 0
+    for run in range(40):
+        stations, segments = _two_faults(0.0, seed=100 + run)
+        _, free = detect_dipoles(stations, segments, template_top_depths_m=[50.0, 100.0, 200.0],
+                                 seed=run)
+        hits += bool(free.detected)
+    assert stats.binom.sf(hits - 1, 40, 0.01) > 0.01, hits
 
 
 def test_stations_belong_to_their_nearest_segment(planted):
@@ -274,7 +343,8 @@ def test_false_alarm_rate_matches_decoy_calibration():
     corridor = detect._auto_corridor(data, depths)
     (pos,) = assign_points(data.easting, data.northing, segments, corridor_m=corridor)
     setup = detect._SegmentSetup(
-        segments[0], pos, data, corridor, depths, np.array([2.0, 4.0]), options["n_decoys"],
+        segments[0], pos, data, corridor, depths, np.array([2.0, 4.0]), np.array([1.0, 0.25, 4.0]),
+        options["n_decoys"],
         detect._fault_tree(segments, corridor), np.random.default_rng([options["seed"], 0]))
     assert setup.n_decoys >= 150
     n_runs = 400

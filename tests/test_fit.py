@@ -133,6 +133,21 @@ def test_conductivity_contrast_recovered():
     assert "dip-contrast approximation" not in row["flags"] or row["dip_deg"] < 89.5
 
 
+def test_contrast_is_fitted_when_detection_found_one_sided_lobes():
+    # fit_sigma_ratio = "auto" (the default) frees the ratio when the best detection
+    # template had a contrast, and holds it at 1 otherwise.
+    truth = dict(TRUTH, sigma_ratio=4.0)
+    segment = make_segment()
+    stations, detection = make_survey(segment, truth=truth)
+    contrast = replace(detection, best_template={"sigma_ratio": 4.0})
+    (row,) = fit_segment(stations, contrast, models=("fault_patch",), **FAST).sources
+    check_recovery(row, truth)
+    assert abs(np.log(row["sigma_ratio"] / 4.0)) < np.log(1.25)
+    uniform = replace(detection, best_template={"sigma_ratio": 1.0})
+    (row,) = fit_segment(stations, uniform, models=("fault_patch",), **FAST).sources
+    assert row["sigma_ratio"] == 1.0
+
+
 def test_variable_projection_matches_joint_least_squares():
     # Reference: scipy least_squares over all nine parameters (geometry, jump
     # and regional together), started from the truth; at the optimum both must

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import warnings
+from dataclasses import replace
 
 import numpy as np
 import numpy.testing as npt
@@ -225,6 +226,38 @@ def dense_centred_rms(survey, reading_sigma):
     q[np.ix_(keep, keep)] = reading_sigma**2 * np.linalg.inv(a.T @ a)
     c = np.eye(n) - 1.0 / n
     return float(np.sqrt(np.trace(c @ q @ c) / n))
+
+
+def test_blunder_below_the_network_threshold_is_found_by_its_reading():
+    # A 16 mV blunder on reading 30 (E1: S01-006 -> S01-007, CSV row 32) makes its chain
+    # misclose at a standardized residual of about 3.1: above blunder_sigma (3) but below
+    # the Bonferroni level for this network, so loop closure alone cannot name it. The
+    # reading itself stands 16 mV off its neighbours (1 mV reading noise), and
+    # down-weighting it closes the chain: it is named as the blunder.
+    survey, truth = grid_survey(noise=1.0, seed=11, blunder=(30, 16.0), mode="fixed_lead")
+    red = reduce_quiet(survey, mode="fixed_lead", reading_sigma_mv=1.0)
+    worst = float(red.qc["legs"]["std_residual"].abs().max())
+    assert 3.0 < worst < red.network["blunder_threshold"]
+    blunders = red.network["blunders"]
+    assert list(blunders["source_row"]) == [32]
+    assert blunders["flag"].iloc[0].startswith("blunder: 17.0 mV off its neighbours")
+    err = error_vs_truth(red, truth)
+    assert np.sqrt(np.mean((err - err.mean()) ** 2)) <= 1.2 * dense_centred_rms(survey, 1.0)
+
+
+def test_misclosure_spread_over_a_chain_is_only_suspect():
+    # The same 16 mV, spread as 2 mV on each of the 8 readings of that chain (rows 26-33):
+    # the chain misclosure is the same, but no single reading stands out, so nothing is
+    # named a blunder; the chain's legs are marked suspect instead.
+    survey, _ = grid_survey(noise=1.0, seed=11, mode="fixed_lead")
+    dv = survey.readings.dv_mv.copy()
+    dv[24:32] += 2.0
+    survey = replace(survey, readings=replace(survey.readings, dv_mv=dv))
+    red = reduce_quiet(survey, mode="fixed_lead", reading_sigma_mv=1.0)
+    assert red.network["blunders"].empty
+    legs = red.qc["legs"]
+    suspect = legs[legs["flag"].str.startswith("suspect")]
+    assert set(suspect["source_row"]) == set(range(26, 34))
 
 
 def test_reduced_matches_truth_within_noise_budget():

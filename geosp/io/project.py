@@ -42,6 +42,8 @@ REQUIRED = {
 PATH_KEYS = {("stations", "path"), ("readings", "path"), ("readings", "electrode_checks"),
              ("faults", "path"), ("dem", "path")}
 STAGE_SECTIONS = ("reduce", "grid", "detect", "fit", "publish")
+# Stage options whose default "auto" may also be replaced by true or false.
+BOOL_OR_AUTO = ("terrain", "fit_sigma_ratio")
 
 
 @dataclass(frozen=True)
@@ -172,7 +174,8 @@ def read_project(path, *, stage_defaults=None):
                 problems.append(OptionError(
                     path, f"unknown key '{key}' in [{section}].{_suggest(key, defaults)}",
                     f"Known keys in [{section}]: {known}."))
-            elif not _type_ok(value, defaults[key], auto=section in STAGE_SECTIONS):
+            elif not (_type_ok(value, defaults[key], auto=section in STAGE_SECTIONS)
+                      or (key in BOOL_OR_AUTO and isinstance(value, bool))):
                 problems.append(OptionError(
                     path, f"[{section}] {key} = {value!r} has the wrong type.",
                     f"Give {_describe(defaults[key])}" + (f" (default {defaults[key]!r})." if defaults[key] != "" else ".")))

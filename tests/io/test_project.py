@@ -49,6 +49,20 @@ def test_wrong_type_and_missing_section_reported_together(tmp_path):
     assert "[faults] section is missing" in message
 
 
+def test_true_or_false_may_replace_auto_where_the_option_takes_both(tmp_path):
+    defaults = {"reduce": {"terrain": "auto", "terrain_corridor_m": "auto"},
+                "fit": {"fit_sigma_ratio": "auto"}}
+    text = MINIMAL + "[reduce]\nterrain = false\n[fit]\nfit_sigma_ratio = true\n"
+    project = read_project(_write(tmp_path, text), stage_defaults=defaults)
+    assert project.stages["reduce"]["terrain"] is False
+    assert project.stages["fit"]["fit_sigma_ratio"] is True
+    # A number-or-"auto" option still refuses true/false.
+    with pytest.raises(InputError) as err:
+        read_project(_write(tmp_path, MINIMAL + "[reduce]\nterrain_corridor_m = true\n"),
+                     stage_defaults=defaults)
+    assert "terrain_corridor_m = True has the wrong type" in str(err.value)
+
+
 def test_toml_syntax_error_names_file(tmp_path):
     path = _write(tmp_path, "[stations\npath = s.shp\n")
     with pytest.raises(InputError) as err:
