@@ -57,8 +57,8 @@ SURVEY_NAME = "Cindervale prospect, demo SP survey CV-26 (fictional)"
 ORIGIN = (498000.0, 4500000.0)
 LINE_AZ = 110.0
 CROSS_AZ = 20.0
-N_LINES = 14
-LINE_SPACING_M = 275.0
+N_LINES = 25
+LINE_SPACING_M = 150.0  # about the shallowest planted top depth (survey design)
 STATION_SPACING_M = 25.0
 STATIONS_PER_LINE = 181  # 4.5 km
 TIE_STATION_INDEX = (30, 90, 150)  # ties cross the lines at these station numbers
@@ -90,7 +90,7 @@ PATCHES = [
          top_depth_m=200.0, bottom_depth_m=700.0, length_m=1400.0, jump_mv=160.0,
          sigma_ratio=1.0),
     dict(source_id="P3", fault_id="F-West", limb=0, along_m=1100.0, dip_deg=85.0,
-         top_depth_m=120.0, bottom_depth_m=500.0, length_m=1200.0, jump_mv=-120.0,
+         top_depth_m=120.0, bottom_depth_m=500.0, length_m=1200.0, jump_mv=-200.0,
          sigma_ratio=4.0),
 ]
 SOURCE_FREE_FAULTS = ["F-South", "F-Cross"]
@@ -107,8 +107,8 @@ BLUNDER = dict(line="L05", from_station="L05-060", to_station="L05-061", error_m
 FIRST_DAY = datetime(2026, 5, 11)
 # Field days: the runs (lines) read that day, in order. Even-numbered lines are
 # walked back from their last station.
-DAYS = [["L01", "L02"], ["L03", "L04"], ["L05", "L06"], ["L07", "L08"],
-        ["L09", "L10"], ["L11", "L12"], ["L13", "L14"], ["T1", "T2", "T3"]]
+DAYS = [[f"L{2 * d + 1:02d}", f"L{2 * d + 2:02d}"] for d in range(N_LINES // 2)] \
+    + [[f"L{N_LINES:02d}"]] * (N_LINES % 2) + [["T1", "T2", "T3"]]
 
 
 def _unit(azimuth_deg):

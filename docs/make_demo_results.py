@@ -44,6 +44,64 @@ def screenshot(html, png, *, size=(1400, 1000)):
     return True
 
 
+def recovery_rows(table):
+    """Markdown rows of the recovered-vs-planted table."""
+    lines = []
+    for _, r in table.iterrows():
+        if not r["found"]:
+            lines.append(f"| {r['planted']} | {r['fault_id']} | not found | {_fmt(r['top_depth_true_m'])} → — | "
+                         f"{_fmt(r['bottom_depth_true_m'])} → — | | {_fmt(r['dip_true_deg'])} → — | "
+                         f"{_fmt(r['jump_true_mv'])} → — | {_fmt(r['length_true_m'])} → — | | no |")
+            continue
+        lines.append(
+            f"| {r['planted']} | {r['fault_id']} | {r['source_id']} | {_fmt(r['top_depth_true_m'])} → "
+            f"{_fmt(r['top_depth_m'])} ({_fmt(r['top_depth_lo_m'])}–{_fmt(r['top_depth_hi_m'])}) | "
+            f"{_fmt(r['bottom_depth_true_m'])} → {_fmt(r['bottom_depth_m'])} | {_fmt(r['geo_mean_true_m'])} → "
+            f"{_fmt(r['geo_mean_m'])} | {_fmt(r['dip_true_deg'])} → {_fmt(r['dip_deg'])} | "
+            f"{_fmt(r['jump_true_mv'])} → {_fmt(r['jump_mv'])} | {_fmt(r['length_true_m'])} → {_fmt(r['length_m'])} | "
+            f"{_fmt(r['offset_m'])} | {'yes' if r['within_tolerance'] else 'no'} |")
+    return lines
+
+
+TABLE_HEAD = [
+    "| planted | fault | found as | top depth m (planted → fitted, 16–84 %) | bottom m | √(top·bottom) m | dip ° | "
+    "jump mV | length m | offset m | within tolerance |",
+    "|---|---|---|---|---|---|---|---|---|---|---|",
+]
+
+
+def total_field_lines(truth):
+    """Recovery from the crew's total-field file (no readings, so no network covariance)."""
+    from demo_area.compare import compare_sources, false_sources
+    from geosp import pipeline
+
+    out = Path(tempfile.mkdtemp(prefix="geosp-demo-tf-"))
+    try:
+        _, state = pipeline.execute(ROOT / "demo_area" / "project_total_field.toml",
+                                    ("reduce", "grid", "detect", "fit"), out=out)
+    finally:
+        shutil.rmtree(out, ignore_errors=True)
+    table = compare_sources(state.fits.sources, truth)
+    false = false_sources(state.fits.sources, truth)
+    flags = {r["source_id"]: r["flags"] for r in state.fits.sources}
+    found = table[table["found"]]
+    return [
+        "",
+        "## The same survey from the total-field file",
+        "",
+        "`demo_area/project_total_field.toml` reads the crew's total-field values (`stations.shp`: "
+        "signal, soil noise and outliers, without reading errors). There are no readings, so no "
+        "network covariance: the stations are fitted as independent.",
+        "",
+        *TABLE_HEAD,
+        *recovery_rows(table),
+        "",
+        "Flags: " + ("; ".join(f"{sid}: `{flags.get(sid, '')}`" for sid in found["source_id"]) or "none") + ".",
+        "Fault sources on the source-free faults or at the pipeline: "
+        + (", ".join(false["source_free_faults"] + false["at_pipeline"]) or "none") + ".",
+    ]
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[1])
     parser.add_argument("--out", type=Path, default=None, help="demo output folder (default: a temporary one)")
@@ -83,23 +141,9 @@ def main(argv=None):
         "Fitted depths refer to the fit's own ground level (`ground_m`); here they are shifted onto the "
         "planted ground level, so that both describe the same elevations.",
         "",
-        "| planted | fault | found as | top depth m (planted → fitted, 16–84 %) | bottom m | √(top·bottom) m | dip ° | "
-        "jump mV | length m | offset m | within tolerance |",
-        "|---|---|---|---|---|---|---|---|---|---|---|",
+        *TABLE_HEAD,
     ]
-    for _, r in table.iterrows():
-        if not r["found"]:
-            lines.append(f"| {r['planted']} | {r['fault_id']} | not found | {_fmt(r['top_depth_true_m'])} → — | "
-                         f"{_fmt(r['bottom_depth_true_m'])} → — | | {_fmt(r['dip_true_deg'])} → — | "
-                         f"{_fmt(r['jump_true_mv'])} → — | {_fmt(r['length_true_m'])} → — | | no |")
-            continue
-        lines.append(
-            f"| {r['planted']} | {r['fault_id']} | {r['source_id']} | {_fmt(r['top_depth_true_m'])} → "
-            f"{_fmt(r['top_depth_m'])} ({_fmt(r['top_depth_lo_m'])}–{_fmt(r['top_depth_hi_m'])}) | "
-            f"{_fmt(r['bottom_depth_true_m'])} → {_fmt(r['bottom_depth_m'])} | {_fmt(r['geo_mean_true_m'])} → "
-            f"{_fmt(r['geo_mean_m'])} | {_fmt(r['dip_true_deg'])} → {_fmt(r['dip_deg'])} | "
-            f"{_fmt(r['jump_true_mv'])} → {_fmt(r['jump_mv'])} | {_fmt(r['length_true_m'])} → {_fmt(r['length_m'])} | "
-            f"{_fmt(r['offset_m'])} | {'yes' if r['within_tolerance'] else 'no'} |")
+    lines += recovery_rows(table)
     lines += [
         "",
         "## Faults without a source and the pipeline",
@@ -125,9 +169,13 @@ def main(argv=None):
         f"- Terrain slope {_fmt(red.terrain.get('slope_mv_per_m'), 2)} mV/m (95 %: {_fmt(red.terrain.get('ci_lo'), 2)} to "
         f"{_fmt(red.terrain.get('ci_hi'), 2)}); planted {truth['terrain']['slope_mv_per_m']} mV/m.",
         f"- Stations flagged: {int((red.stations.flag != '').sum())} (planted outliers: "
-        f"{', '.join(truth['outliers']['stations']) if isinstance(truth.get('outliers'), dict) and 'stations' in truth['outliers'] else 'see truth.json'}).",
+        f"{', '.join(o['station'] for o in truth['outliers'])}).",
+        "- Blunder readings named: "
+        + (", ".join(f"{b.from_id} → {b.to_id}" for b in red.network["blunders"].itertuples()) or "none")
+        + f" (planted: {truth['blunder']['from']} → {truth['blunder']['to']}, {truth['blunder']['error_mv']:+g} mV).",
+        *total_field_lines(truth),
         "",
-        "## Timings (s)",
+        "## Timings (s) of the main demo run",
         "",
         ", ".join(f"{k} {v:.1f}" for k, v in state.timings.items()),
         "",

@@ -25,6 +25,14 @@ then column block by column block with the sparse LU factors (exact up to
 random-projection estimate with ``N_PROBES`` probes is used (relative error
 about sqrt(2 / N_PROBES), roughly 14 %). Interior-node variances add the
 Brownian-bridge term ``c (C - c) / C`` of their chain, which is exact.
+
+Full covariances between any nodes (for fits that weight the correlated
+network error properly) come from :class:`NetworkCovariance`: an interior
+node is ``(1 - λ) x_a + λ x_b + B`` with its chain's end junctions ``a``,
+``b``, ``λ = c / C`` and a bridge term ``B`` that is uncorrelated with every
+junction potential, so that
+``cov(x_i, x_j) = u_iᵀ Q u_j + [same chain] (min(c_i, c_j) − c_i c_j / C)``
+with ``Q`` the inverse junction normal matrix.
 """
 
 from __future__ import annotations
@@ -167,7 +175,106 @@ def adjust_network(n_nodes, from_index, to_index, observed, variance, reference)
         "chains": chain,
         "loops": _fundamental_loops(chain, reference),
         "covariance": method,
+        "covariance_model": NetworkCovariance(
+            normal if len(free) else None, col, chain["node_chain"], chain["node_var"], ca, cb, cc),
     }
+
+
+class NetworkCovariance:
+    """
+    Covariance of the adjusted node potentials (mV², for the observation
+    variances given), between any nodes; see the module notes.
+
+    ``station_node`` maps stations to nodes (-1: not in the network),
+    ``factor`` scales the covariance (a variance factor) and
+    ``independent_sigma_mv`` is the stations' own uncorrelated noise (mV,
+    not part of :meth:`block`); all are set by :meth:`for_stations`.
+    Pickles without its LU factors.
+    """
+
+    def __init__(self, normal, col, node_chain, node_var, chain_a, chain_b, chain_var,
+                 station_node=None, factor=1.0, independent_sigma_mv=0.0):
+        self.normal = normal
+        self.col = np.asarray(col)
+        self.node_chain = np.asarray(node_chain)
+        self.node_var = np.asarray(node_var, dtype=float)
+        self.chain_a, self.chain_b = np.asarray(chain_a), np.asarray(chain_b)
+        self.chain_var = np.asarray(chain_var, dtype=float)
+        self.station_node = station_node
+        self.factor = float(factor)
+        self.independent_sigma_mv = float(independent_sigma_mv)
+        self._lu = None
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["_lu"] = None
+        return state
+
+    def for_stations(self, station_node, factor=1.0, independent_sigma_mv=0.0):
+        """A copy that takes station indices (``station_node[i]`` = node of station i)."""
+        return NetworkCovariance(self.normal, self.col, self.node_chain, self.node_var,
+                                 self.chain_a, self.chain_b, self.chain_var,
+                                 np.asarray(station_node, dtype=np.int64), factor,
+                                 independent_sigma_mv)
+
+    def parts(self, index):
+        """
+        The covariance at ``index`` (station indices after :meth:`for_stations`,
+        node indices before) as ``u q uᵀ`` plus within-chain bridges, scaled
+        by ``factor``: a dict with ``u`` (k, J) junction weights, ``q`` (J, J)
+        junction covariance, and per station ``chain`` (bridge id, -1 for none),
+        ``c`` (cumulative variance along the chain) and ``total`` (the chain's
+        variance); the bridge covariance of two stations on one chain is
+        ``min(c_i, c_j) − c_i c_j / total``. Stations outside the network have
+        zero rows.
+        """
+        index = np.asarray(index, dtype=np.int64)
+        nodes = self.station_node[index] if self.station_node is not None else index
+        k = nodes.size
+        inside = nodes >= 0
+        node = np.where(inside, nodes, 0)
+        chain = np.where(inside, self.node_chain[node], -1)
+        interior = chain >= 0
+        ch = np.where(interior, chain, 0)
+        lam = np.where(interior, self.node_var[node] / self.chain_var[ch], 0.0)
+        ends = np.column_stack([np.where(interior, self.chain_a[ch], node),
+                                np.where(interior, self.chain_b[ch], node)])
+        weights = np.column_stack([1.0 - lam, lam]) * inside[:, None]
+        cols = self.col[ends]  # -1 for the reference junction (potential fixed at 0)
+        used = np.unique(cols[(cols >= 0) & (weights != 0.0)])
+        u = np.zeros((k, used.size))
+        q = np.zeros((used.size, used.size))
+        if used.size:
+            if self._lu is None:
+                self._lu = splu(self.normal)
+            rhs = np.zeros((self.normal.shape[0], used.size))
+            rhs[used, np.arange(used.size)] = 1.0
+            q = self._lu.solve(rhs)[used]  # (J, J) block of the inverse normal matrix
+            q = 0.5 * (q + q.T)
+            pos = np.searchsorted(used, np.maximum(cols, 0))
+            for e in range(2):
+                ok = cols[:, e] >= 0
+                np.add.at(u, (np.flatnonzero(ok), pos[ok, e]), weights[ok, e])
+        return {"u": u, "q": self.factor * q, "chain": chain,
+                "c": self.factor * np.where(interior, self.node_var[node], 0.0),
+                "total": self.factor * np.where(interior, self.chain_var[ch], 1.0)}
+
+    def block(self, index):
+        """Dense covariance (mV²) at ``index`` (see :meth:`parts`)."""
+        return dense_covariance(self.parts(index))
+
+
+def bridge_covariance(c, total):
+    """Brownian-bridge covariance min(c_i, c_j) − c_i c_j / C of stations on one chain."""
+    return np.minimum(c[:, None], c[None, :]) - c[:, None] * c[None, :] / total[:, None]
+
+
+def dense_covariance(parts):
+    """The dense matrix of :meth:`NetworkCovariance.parts`."""
+    chain = parts["chain"]
+    out = parts["u"] @ parts["q"] @ parts["u"].T
+    same = (chain[:, None] >= 0) & (chain[:, None] == chain[None, :])
+    return out + np.where(same, bridge_covariance(parts["c"], parts["total"]), 0.0)
 
 
 def _series_chains(n, f, t, obs, var, junction):

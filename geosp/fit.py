@@ -26,11 +26,12 @@ from functools import partial
 import numpy as np
 import pandas as pd
 import shapely
-from scipy import optimize
+from scipy import linalg, optimize, sparse
 from scipy.spatial import cKDTree
 from scipy.stats import qmc
 
 from . import physics
+from ._network import bridge_covariance
 from .errors import InputError, OptionError
 from .models import FitResult, SegmentFit
 from .parallel import item_seed, map_segments
@@ -286,15 +287,136 @@ class _Model:
 # Variable projection
 # --------------------------------------------------------------------------------------
 
+class _Whitener:
+    """
+    Applies W^½ to data or design columns, so that least squares on W^½r is
+    weighted (or generalised) least squares on r.
+
+    Independent noise: W^½ = diag(√w). Network covariance (generalised least
+    squares), C = E + U Q Uᵀ with E = diag(var) plus the within-chain bridges
+    (block diagonal) and U Q Uᵀ the low-rank part carried by the loop
+    junctions: with L_E the Cholesky factor of E (sparse, block by block) and
+    Ũ = L_E⁻¹ U Q^½ = P S Rᵀ, W^½ = (I + ŨŨᵀ)^(−½) L_E⁻¹ with
+    (I + ŨŨᵀ)^(−½) = I − P (I − (I + S²)^(−½)) Pᵀ, so that (W^½)ᵀW^½ = C⁻¹
+    exactly, at the cost of a sparse and two thin products per use.
+    """
+
+    def __init__(self, weights=None, var=None, parts=None):
+        self.sw = self.inverse = self.p = None
+        if parts is None:
+            self.sw = np.sqrt(weights)
+            return
+        n = var.size
+        chain = parts["chain"]
+        rows, cols, vals = [], [], []
+        single = np.flatnonzero(chain < 0)
+        rows.append(single)
+        cols.append(single)
+        vals.append(1.0 / np.sqrt(var[single]))
+        on_chain = np.flatnonzero(chain >= 0)
+        for members in np.split(on_chain[np.argsort(chain[on_chain], kind="stable")],
+                                np.flatnonzero(np.diff(np.sort(chain[on_chain]))) + 1):
+            if members.size == 0:
+                continue
+            e = np.diag(var[members]) + bridge_covariance(parts["c"][members],
+                                                          parts["total"][members])
+            factor = linalg.cholesky(e, lower=True, check_finite=False)
+            inv = linalg.solve_triangular(factor, np.eye(members.size), lower=True,
+                                          check_finite=False)
+            i, j = np.tril_indices(members.size)
+            rows.append(members[i])
+            cols.append(members[j])
+            vals.append(inv[i, j])
+        self.inverse = sparse.csr_matrix(
+            (np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n, n))
+        q = parts["q"]
+        if q.shape[0]:
+            w, vec = np.linalg.eigh(q)
+            ut = self.inverse @ (parts["u"] @ (vec * np.sqrt(np.clip(w, 0.0, None))))
+            # left singular vectors of Ũ from the small Gram matrix ŨᵀŨ = R S² Rᵀ
+            s2, r = np.linalg.eigh(ut.T @ ut)
+            keep = s2 > 1e-12 * max(float(s2.max()), 1e-300)
+            self.p = ut @ (r[:, keep] / np.sqrt(s2[keep]))
+            self.shrink = 1.0 - 1.0 / np.sqrt(1.0 + s2[keep])
+
+    def __call__(self, values):
+        if self.inverse is None:
+            return values * (self.sw if values.ndim == 1 else self.sw[:, None])
+        out = self.inverse @ values
+        if self.p is not None:
+            if out.ndim == 1:
+                out = out - self.p @ (self.shrink * (self.p.T @ out))
+            else:
+                out = out - self.p @ (self.shrink[:, None] * (self.p.T @ out))
+        return out
+
+
+class _Noise:
+    """
+    Noise of the stations of one fit: independent variances ``var`` (mV²,
+    the station weights already divided in) plus, for reduced gradient
+    surveys, the network covariance ``network`` (a :class:`_Network`,
+    correlated along the lines between loop crossings; physics notes §4).
+    """
+
+    def __init__(self, var, network=None):
+        self.var = np.asarray(var, dtype=float)
+        self.network = network
+
+    def whitener(self, robust):
+        """W^½ with Huber weights ``robust`` applied to the independent part."""
+        if self.network is None:
+            return _Whitener(weights=robust / self.var)
+        return _Whitener(var=self.var / robust, parts=self.network.parts)
+
+
+class _Network:
+    """
+    Network covariance of a fit's stations in factored form
+    (:meth:`geosp._network.NetworkCovariance.parts`) and the stations' own
+    noise (mV).
+    """
+
+    def __init__(self, parts, independent_sigma_mv):
+        self.parts = parts
+        self.independent_sigma_mv = float(independent_sigma_mv)
+
+    def subset(self, keep):
+        p = self.parts
+        parts = {"u": p["u"][keep], "q": p["q"], "chain": p["chain"][keep],
+                 "c": p["c"][keep], "total": p["total"][keep]}
+        return _Network(parts, self.independent_sigma_mv)
+
+    def diagonal(self):
+        """Network variance of each station (mV²)."""
+        p = self.parts
+        junction = np.einsum("ij,jk,ik->i", p["u"], p["q"], p["u"])
+        return junction + np.where(p["chain"] >= 0, p["c"] - p["c"] ** 2 / p["total"], 0.0)
+
+
+def _station_noise(weight, sigma, network=None):
+    """
+    Noise model of a fit's stations and each station's total sigma (mV, for
+    the Huber weights): independent ``sigma`` (mV) divided by the station
+    weights, or with ``network`` (a :class:`_Network` over the same stations)
+    the stations' own noise plus the network covariance (generalised least
+    squares).
+    """
+    if network is None:
+        return _Noise(sigma ** 2 / weight), sigma
+    own = max(network.independent_sigma_mv, 1e-3)
+    return _Noise(own ** 2 / weight, network), np.sqrt(own ** 2 + network.diagonal())
+
+
 class _Problem:
     """Weighted data, variable projection and optimisation for one model."""
 
-    def __init__(self, model, data, sw):
+    def __init__(self, model, data, white):
         self.model = model
         self.data = data
-        self.sw = sw  # sqrt of the weights, (n,)
-        self.dw = data["d"] * sw
-        self.regional_w = data["regional"] * sw[:, None]
+        self.white = white  # W^½ (a _Whitener)
+        self.dw = white(data["d"])
+        self.regional_w = white(data["regional"])
 
     def solve(self, p, fixed=None):
         """
@@ -304,7 +426,7 @@ class _Problem:
         a jump). Returns (x, weighted residual, basis, weighted design).
         """
         g = self.model.basis(p)
-        aw = np.hstack([g * self.sw[:, None], self.regional_w])
+        aw = np.hstack([self.white(g), self.regional_w])
         rhs = self.dw
         if fixed is not None:
             col, value = fixed
@@ -330,7 +452,7 @@ class _Problem:
         x, _, g, aw = self.solve(p, fixed)
         dg = self.model.basis_jacobian(p, g)  # (n, m, k)
         m = self.model.n_columns
-        v = np.einsum("nmk,m->nk", dg, x[:m]) * self.sw[:, None]
+        v = self.white(np.einsum("nmk,m->nk", dg, x[:m]))
         cols = np.arange(aw.shape[1])
         if fixed is not None:
             cols = np.delete(cols, fixed[0])
@@ -459,8 +581,8 @@ def _covariance(problem, p, x, s2):
     g = model.basis(p)
     m = model.n_columns
     dg = model.basis_jacobian(p, g)
-    j_theta = np.einsum("nmk,m->nk", dg, x[:m]) * problem.sw[:, None]
-    aw = np.hstack([g * problem.sw[:, None], problem.regional_w])
+    j_theta = problem.white(np.einsum("nmk,m->nk", dg, x[:m]))
+    aw = np.hstack([problem.white(g), problem.regional_w])
     jac = np.hstack([j_theta, aw])
     _, sv, vt = np.linalg.svd(jac, full_matrices=False)
     keep = sv > sv[0] * 1e-10
@@ -626,7 +748,7 @@ def fit_segment(stations, detection, *, models=_MODELS, n_starts=512, n_local=8,
 class _Setup:
     """Data, weights, local frame, terrain datum and bounds of one segment's fit window."""
 
-    def __init__(self, stations, detection, options, background=None):
+    def __init__(self, stations, detection, options, background=None, network=None):
         segment = self.segment = detection.segment
         index = self.index = np.asarray(detection.station_index, dtype=int)
         d_all = np.asarray(stations.sp_mv, dtype=float)[index]
@@ -654,8 +776,9 @@ class _Setup:
             fallback = max(1.4826 * np.median(np.abs(res - np.median(res))), 1e-3)
             sigma = np.where(np.isfinite(sigma), sigma, fallback)
         self.s, self.t, self.d = s, t, d
-        self.sig = sigma[used]
-        self.w0 = weight[used] / self.sig ** 2
+        if network is not None:
+            network = network.subset(index).subset(np.flatnonzero(used))
+        self.noise, self.sig = _station_noise(weight[used], sigma[used], network)
         spacing = _station_spacing(s, t)
         self.elevation = np.asarray(stations.upward, dtype=float)[index]
         self.offset_all, self.ground = _terrain_offsets(
@@ -686,21 +809,22 @@ class _Setup:
                                                   t / _REGIONAL_SCALE])}
 
 
-def _fit_segment(stations, detection, options, background=None, start=None):
+def _fit_segment(stations, detection, options, background=None, start=None, network=None):
     """
     Body of :func:`fit_segment`. ``background`` (mV at ``station_index``) is
     subtracted from the data first (the fields of sources fitted on other
     segments); ``start`` = (model name, p) adds a local refinement from ``p``
-    to that model's global search.
+    to that model's global search; ``network`` (a :class:`_Network` over
+    ``stations``) makes every fit generalised least squares.
     """
     start_time = time.perf_counter()
     models = options["models"]
     models = (models,) if isinstance(models, str) else tuple(models)
     _check_options(models, options["n_starts"], options["n_local"], options["uncertainty"],
                    options["dip_range_deg"], options["huber_passes"], options["fit_sigma_ratio"])
-    setup = _Setup(stations, detection, options, background)
+    setup = _Setup(stations, detection, options, background, network)
     segment, index, used, n = setup.segment, setup.index, setup.used, setup.n
-    s, t, d, sig, w0, data = setup.s, setup.t, setup.d, setup.sig, setup.w0, setup.data
+    s, t, d, sig, noise, data = setup.s, setup.t, setup.d, setup.sig, setup.noise, setup.data
     s_all, t_all, offset_all = setup.s_all, setup.t_all, setup.offset_all
     counter, scale = setup.counter, _REGIONAL_SCALE
     rng = item_seed(options["seed"], segment.segment_id)
@@ -708,7 +832,7 @@ def _fit_segment(stations, detection, options, background=None, start=None):
     for name in ("none",) + models:
         model = _Model(name, data, setup.bounds)
         fits[name] = _fit_model(
-            model, data, w0, sig, rng, n_starts=options["n_starts"], n_local=options["n_local"],
+            model, data, noise, sig, rng, n_starts=options["n_starts"], n_local=options["n_local"],
             huber=options["huber"], huber_passes=options["huber_passes"],
             start=start[1] if start is not None and name == start[0] else None)
     min_bic_gain, uncertainty = options["min_bic_gain"], options["uncertainty"]
@@ -732,7 +856,7 @@ def _fit_segment(stations, detection, options, background=None, start=None):
 
     best = fits[chosen]
     model = best["model"]
-    problem = _Problem(model, data, np.sqrt(w0 * best["robust"]))
+    problem = _Problem(model, data, noise.whitener(best["robust"]))
     p, x = best["p"], best["x"]
     g = model.basis(p)
     source_used = g @ x[:model.n_columns] if model.n_columns else np.zeros(n)
@@ -740,7 +864,8 @@ def _fit_segment(stations, detection, options, background=None, start=None):
 
     flags, sources, profiles, correlation, ambiguities = [], [], {}, None, ()
     if chosen != "none":
-        chi2_plain = float(np.sum(w0 * best["robust"] * (d - source_used - regional_used) ** 2))
+        white_residual = problem.white(d - source_used - regional_used)
+        chi2_plain = float(white_residual @ white_residual)
         dof = max(n - model.k, 1)
         s2 = chi2_plain / dof
         cov, names, cov_t = _covariance(problem, p, x, s2)
@@ -796,7 +921,7 @@ def _fit_segment(stations, detection, options, background=None, start=None):
     )
 
 
-def _fit_model(model, data, w0, sig, rng, *, n_starts, n_local, huber, huber_passes,
+def _fit_model(model, data, noise, sig, rng, *, n_starts, n_local, huber, huber_passes,
                start=None, search=True):
     """
     Global search (``search``) and/or a local refinement from ``start`` (the
@@ -809,7 +934,7 @@ def _fit_model(model, data, w0, sig, rng, *, n_starts, n_local, huber, huber_pas
     p = np.zeros(0)
     passes = huber_passes if huber else 1
     for i in range(passes):
-        problem = _Problem(model, data, np.sqrt(w0 * robust))
+        problem = _Problem(model, data, noise.whitener(robust))
         if model.k_nonlinear == 0:
             p = np.zeros(0)
         elif i == 0:
@@ -832,13 +957,17 @@ def _fit_model(model, data, w0, sig, rng, *, n_starts, n_local, huber, huber_pas
         robust = new
         if change < 1e-3:
             break
-    problem = _Problem(model, data, np.sqrt(w0 * robust))
+    problem = _Problem(model, data, noise.whitener(robust))
     x, _, g, _ = problem.solve(p)
     pred = (g @ x[:model.n_columns] if model.n_columns else 0.0) \
         + data["regional"] @ x[model.n_columns:]
     u = (d - pred) / sig
-    weight_station = w0 * sig ** 2  # the user's station weights
-    chi2 = float(np.sum(weight_station * (_huber_loss(u) if huber else u * u)))
+    if noise.network is None:
+        weight_station = sig ** 2 / noise.var  # the user's station weights
+        chi2 = float(np.sum(weight_station * (_huber_loss(u) if huber else u * u)))
+    else:  # generalised least squares: the whitened residual with the final Huber weights
+        r = problem.white(d - pred)
+        chi2 = float(r @ r)
     ambiguities = _distinct_minima(problem, p, minima) if model.k_nonlinear else []
     return {"model": model, "p": p, "x": x, "chi2": chi2, "robust": robust,
             "ambiguities": ambiguities}
@@ -1137,13 +1266,20 @@ def _pole_row(segment, model, p, x, cov, names, stats, flags):
 
 def _fit_one(item, options):
     """Worker entry: fit one segment given its own stations (picklable)."""
-    stations, detection, original_index = item
-    fit = fit_segment(stations, detection, **options)
+    stations, detection, original_index, network = item
+    fit = _fit_segment(stations, detection, {**_fit_defaults(), **options}, network=network)
     return replace(fit, station_index=original_index)
 
 
-def fit_segments(stations, detections, *, window_m="auto", joint=True, workers=None,
-                 scheduler=None, progress=None, **fit_options):
+def _network_part(covariance, index):
+    """The network covariance over stations ``index`` (None without one)."""
+    if covariance is None:
+        return None
+    return _Network(covariance.parts(index), covariance.independent_sigma_mv)
+
+
+def fit_segments(stations, detections, *, window_m="auto", joint=True, covariance=None,
+                 workers=None, scheduler=None, progress=None, **fit_options):
     """
     Fit every detected segment and re-solve all accepted source strengths jointly.
 
@@ -1166,6 +1302,14 @@ def fit_segments(stations, detections, *, window_m="auto", joint=True, workers=N
         overlap (one regional plane), then refine each one with the fields
         of the others held fixed, so that one source's flank is not read as
         another's regional or depth. Default True.
+    covariance : object or None
+        Correlated error of ``sp_mv`` from the field reduction (the
+        ``station_covariance`` of a gradient survey's network, see
+        :class:`geosp._network.NetworkCovariance`): ``block(index)`` gives
+        the covariance (mV²) between stations and ``independent_sigma_mv``
+        their own noise. With it every fit is a generalised least-squares fit
+        with that covariance; without it, stations are independent with
+        ``sigma_mv``.
     workers : int, "auto" or None
         Processes for the segment fits (see :func:`geosp.parallel.map_segments`).
     scheduler : str or None
@@ -1221,14 +1365,14 @@ def fit_segments(stations, detections, *, window_m="auto", joint=True, workers=N
     for det in detections:
         index = np.asarray(det.station_index, dtype=int)
         local = replace(det, station_index=np.arange(index.size))
-        items.append((stations.subset(index), local, index))
+        items.append((stations.subset(index), local, index, _network_part(covariance, index)))
     func = partial(_fit_one, options=dict(fit_options))
     fits = tuple(map_segments(func, items, workers=workers, scheduler=scheduler,
                               progress=progress))
     accepted = _resolve_overlaps(fits)
     if joint:
         fits = _refine_interacting(stations, fits, accepted, detections, fit_options,
-                                   workers=workers, scheduler=scheduler)
+                                   workers=workers, scheduler=scheduler, covariance=covariance)
     sources, model_mv, regional = _joint_solve(stations, fits, accepted, detections)
     residual = np.asarray(stations.sp_mv, dtype=float) - model_mv
     return FitResult(fits=fits, model_mv=model_mv, residual_mv=residual, regional=regional,
@@ -1337,7 +1481,8 @@ class _JointModel:
         return jac
 
 
-def _refine_interacting(stations, fits, accepted, detections, options, *, workers, scheduler):
+def _refine_interacting(stations, fits, accepted, detections, options, *, workers, scheduler,
+                        covariance=None):
     """Joint re-fit of each group of interacting accepted sources (see fit_segments)."""
     groups = _interaction_groups(stations, fits, accepted)
     if not groups:
@@ -1354,7 +1499,7 @@ def _refine_interacting(stations, fits, accepted, detections, options, *, worker
             own = np.array([local[int(v)] for v in f.station_index], dtype=int)
             members.append((replace(det, station_index=own), f.chosen, f.params,
                             f.ambiguities))
-        items.append((stations.subset(union), members, union))
+        items.append((stations.subset(union), members, union, _network_part(covariance, union)))
     options = {**_fit_defaults(), **options}
     refined = map_segments(partial(_refine_group, options=options), items, workers=workers,
                            scheduler=scheduler)
@@ -1381,8 +1526,8 @@ def _refine_group(item, options):
     changed. Returns one SegmentFit per member, indexed like the original
     stations.
     """
-    stations, members, union = item
-    setups = [_Setup(stations, det, options) for det, *_ in members]
+    stations, members, union, network = item
+    setups = [_Setup(stations, det, options, network=network) for det, *_ in members]
     d = np.asarray(stations.sp_mv, dtype=float)
     weight = np.asarray(stations.weight, dtype=float)
     sigma = np.asarray(stations.sigma_mv, dtype=float)
@@ -1399,8 +1544,8 @@ def _refine_group(item, options):
     data = {"d": d[used], "counter": counter,
             "regional": np.column_stack([np.ones(e.size), (e - e.mean()) / _REGIONAL_SCALE,
                                          (nth - nth.mean()) / _REGIONAL_SCALE])}
-    sig = sigma[used]
-    w0 = weight[used] / sig ** 2
+    noise, sig = _station_noise(weight[used], sigma[used],
+                                None if network is None else network.subset(np.flatnonzero(used)))
     frames = []
     for setup in setups:
         s, t = setup.segment.to_local(e, nth)
@@ -1419,7 +1564,7 @@ def _refine_group(item, options):
         joint_model = _JointModel(models)
         start = np.concatenate([np.clip(current[k][1], m.lower, m.upper)
                                 for k, m in zip(active, models)])
-        best = _fit_model(joint_model, data, w0, sig, item_seed(options["seed"], "joint"),
+        best = _fit_model(joint_model, data, noise, sig, item_seed(options["seed"], "joint"),
                           n_starts=1, n_local=1, huber=options["huber"],
                           huber_passes=options["huber_passes"], start=start, search=False)
         fields = np.zeros((len(members), d.size))
@@ -1431,7 +1576,8 @@ def _refine_group(item, options):
         for k, (det, _chosen, _params, ambiguities) in enumerate(members):
             background = (total - fields[k])[det.station_index]
             start_k = (current[k][0], parts[k]) if k in parts else None
-            fit = _fit_segment(stations, det, options, background=background, start=start_k)
+            fit = _fit_segment(stations, det, options, background=background, start=start_k,
+                               network=network)
             flags = fit.flags
             if ambiguities and fit.sources and "multimodal" not in flags:
                 flags = flags + ("multimodal",)

@@ -24,7 +24,7 @@ from .models import Stations, Survey
 log = logging.getLogger(__name__)
 
 # Options that are computed by the pipeline, not set by users.
-_INTERNAL = {"progress", "station_spacing_m"}
+_INTERNAL = {"progress", "station_spacing_m", "covariance"}
 
 # Faults farther than this from every station are out of reach.
 FAULT_REACH_M = 2000.0
@@ -392,7 +392,8 @@ def run_fit(project, state, *, workers=None, scheduler=None, progress=None):
     picked = _pick(options, fit_segments)
     picked.update(_pick(options, fit_segment))
     with _timed(state, "fit"), _capture(state):
-        state.fits = fit_segments(state.reduction.stations, state.detections, progress=progress, **picked)
+        state.fits = fit_segments(state.reduction.stations, state.detections, progress=progress,
+                                  covariance=state.reduction.network.get("station_covariance"), **picked)
     return state
 
 

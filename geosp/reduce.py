@@ -56,6 +56,8 @@ _MAX_SNOOP = 20  # at most this many blunders are down-weighted, one per solve
 # A reading this many robust standard deviations (1.4826 MAD) away from the running median of
 # its line's readings stands out (the outlier rule of common practice, applied to gradients).
 _READING_OUTLIER_Z = 4.0
+# Fewest independent loops for the loop-closure variance factor to scale the network covariance.
+_MIN_LOOPS_FOR_FACTOR = 10
 _SAME_PLACE_M = 5.0  # repeated station ids farther apart than this get a warning
 _DECISIVE_CHI2 = 10.0  # mode "auto" picks a mode only when loop chi2 differ by more than this
 
@@ -227,7 +229,8 @@ def reduce_survey(
         st, info = _reduce_gradient(
             stations, readings, survey.electrode_checks, survey.reference_station, notes,
             drift=drift, mode=mode, reading_sigma=reading_sigma_mv, blunder_sigma=blunder_sigma,
-            window=outlier_window, max_offset=max_offset_mv, max_drift=max_drift_mv_per_day)
+            window=outlier_window, max_offset=max_offset_mv, max_drift=max_drift_mv_per_day,
+            station_sigma=station_sigma_mv)
         network, qc, lines = info["network"], info["qc"], info["lines"]
     else:
         st, qc["ties"] = _tie_total_field(survey.stations, survey.reference_station, notes)
@@ -489,7 +492,7 @@ def _step_signs(line, mode):
 
 
 def _reduce_gradient(stations, readings, checks, reference, notes, *, drift, mode,
-                     reading_sigma, blunder_sigma, window, max_offset, max_drift):
+                     reading_sigma, blunder_sigma, window, max_offset, max_drift, station_sigma):
     path = readings.path or "readings"
     _check_readings(readings, stations.station_id)
     line = np.asarray(readings.line_id, dtype=str).astype(object)
@@ -625,6 +628,12 @@ def _reduce_gradient(stations, readings, checks, reference, notes, *, drift, mod
         "reference": reference, "mode": chosen, "covariance": res["covariance"],
         "reading_sigma_mv": float(reading_sigma), "blunder_threshold": run["threshold"],
         "blunders": blunders.reset_index(drop=True),
+        # Correlated error of the reduced potentials for fits. The variance factor is the
+        # loop-closure estimate where enough loops support it (common practice: a posteriori
+        # variance of unit weight), else at least 1, as for sigma_mv.
+        "station_covariance": res["covariance_model"].for_stations(
+            node_of, factor=(chi2 / dof if dof >= _MIN_LOOPS_FOR_FACTOR else scale ** 2),
+            independent_sigma_mv=station_sigma),
     }
     if len(modes) == 2:
         network["chi2_by_mode"] = {md: runs[md]["first"]["chi2"] for md in modes}

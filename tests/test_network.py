@@ -63,6 +63,32 @@ def test_adjustment_matches_dense_lstsq(seed, ref):
     assert res["covariance"] == "exact"
 
 
+@pytest.mark.parametrize("seed, ref", [(1, 7), (2, 0), (4, 20)])
+def test_covariance_between_any_nodes_matches_the_dense_inverse(seed, ref):
+    # Reference: the dense inverse of the normal matrix (numpy.linalg.inv), the
+    # covariance of least-squares potentials [Ghilani2010]. Series reduction into
+    # junctions plus Brownian bridges is exact, so the tolerance is round-off.
+    n, f, t, obs, var = random_network(seed, n=60, extra=6)
+    res = adjust_network(n, f, t, obs, var, ref)
+    m = len(f)
+    a = np.zeros((m, n))
+    a[np.arange(m), f] = -1.0
+    a[np.arange(m), t] = 1.0
+    keep = np.delete(np.arange(n), ref)
+    dense = np.zeros((n, n))
+    dense[np.ix_(keep, keep)] = np.linalg.inv(a[:, keep].T @ (a[:, keep] / var[:, None]))
+    rng = np.random.default_rng(seed)
+    nodes = rng.choice(n, 25, replace=False)
+    npt.assert_allclose(res["covariance_model"].block(nodes), dense[np.ix_(nodes, nodes)],
+                        atol=1e-10 * dense.max())
+    # Through a station map with stations outside the network (-1) and a variance factor.
+    station_node = np.array([5, -1, 17, 5, 40])
+    cov = res["covariance_model"].for_stations(station_node, factor=0.5)
+    expected = 0.5 * dense[np.ix_(np.maximum(station_node, 0), np.maximum(station_node, 0))]
+    expected[1, :] = expected[:, 1] = 0.0
+    npt.assert_allclose(cov.block(np.arange(5)), expected, atol=1e-10 * dense.max())
+
+
 def test_loop_misclosures_are_sums_of_observations_around_each_loop():
     # A loop's misclosure is the signed sum of its observations and its sigma the square root
     # of the summed variances (levelling practice, Ghilani 2010 from memory). Ring 0-1-2-3-0
