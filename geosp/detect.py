@@ -187,7 +187,8 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
             break
         removed.update(kept)
         field = sum(_template_field(detections[j], data) for j in sorted(removed))
-        names = ", ".join(detections[j].segment.segment_id for j in sorted(removed))
+        names = ", ".join(detections[j].segment.segment_id for j in sorted(removed)) \
+            if len(removed) <= 3 else f"{len(removed)} detected segments"
         again = [j for j, d in enumerate(detections)
                  if not d.detected and np.isfinite(d.score) and "shares its anomaly" not in d.note]
         for j in again:
@@ -215,8 +216,7 @@ def _template_field(detection, data):
 
 
 def _check_options(depths, ratios, contrasts, false_alarm_rate, n_decoys, min_score,
-                   cultural_max_depth_m,
-                   corridor_m, seed):
+                   cultural_max_depth_m, corridor_m, seed):
     problems = []
     if depths.size == 0 or not np.all(np.isfinite(depths) & (depths > 0)):
         problems.append(("template_top_depths_m", "must be a list of positive depths in m"))

@@ -34,7 +34,7 @@ from . import physics
 from ._network import bridge_covariance
 from .errors import InputError, OptionError
 from .models import FitResult, SegmentFit
-from .parallel import item_seed, map_segments
+from .parallel import item_seed, map_segments, shared_pool
 from .segments import assign_points, corridor_distance
 
 logger = logging.getLogger(__name__)
@@ -1367,12 +1367,13 @@ def fit_segments(stations, detections, *, window_m="auto", joint=True, covarianc
         local = replace(det, station_index=np.arange(index.size))
         items.append((stations.subset(index), local, index, _network_part(covariance, index)))
     func = partial(_fit_one, options=dict(fit_options))
-    fits = tuple(map_segments(func, items, workers=workers, scheduler=scheduler,
-                              progress=progress))
-    accepted = _resolve_overlaps(fits)
-    if joint:
-        fits = _refine_interacting(stations, fits, accepted, detections, fit_options,
-                                   workers=workers, scheduler=scheduler, covariance=covariance)
+    with shared_pool(workers, scheduler):
+        fits = tuple(map_segments(func, items, workers=workers, scheduler=scheduler,
+                                  progress=progress))
+        accepted = _resolve_overlaps(fits)
+        if joint:
+            fits = _refine_interacting(stations, fits, accepted, detections, fit_options,
+                                       workers=workers, scheduler=scheduler, covariance=covariance)
     sources, model_mv, regional = _joint_solve(stations, fits, accepted, detections)
     residual = np.asarray(stations.sp_mv, dtype=float) - model_mv
     return FitResult(fits=fits, model_mv=model_mv, residual_mv=residual, regional=regional,
@@ -1483,29 +1484,74 @@ class _JointModel:
 
 def _refine_interacting(stations, fits, accepted, detections, options, *, workers, scheduler,
                         covariance=None):
-    """Joint re-fit of each group of interacting accepted sources (see fit_segments)."""
+    """
+    Joint re-fit of each group of interacting accepted sources (see
+    fit_segments): per round, the joint fit of every group (one work item
+    per group), then every member of every group re-fitted alone (one work
+    item per member, so that the members run in parallel). A group goes
+    round again (at most ``_JOINT_ROUNDS`` rounds) while a member's chosen
+    model changes and at least two of its members are patches.
+    """
     groups = _interaction_groups(stations, fits, accepted)
     if not groups:
         return fits
     by_id = {det.segment.segment_id: det for det in detections}
-    items = []
+    options = {**_fit_defaults(), **options}
+    states = []
     for group in groups:
         union = np.unique(np.concatenate([fits[i].station_index for i in group]))
         local = {int(v): k for k, v in enumerate(union)}
         members = []
         for i in group:
             f = fits[i]
-            det = by_id[f.segment.segment_id]
             own = np.array([local[int(v)] for v in f.station_index], dtype=int)
-            members.append((replace(det, station_index=own), f.chosen, f.params,
-                            f.ambiguities))
-        items.append((stations.subset(union), members, union, _network_part(covariance, union)))
-    options = {**_fit_defaults(), **options}
-    refined = map_segments(partial(_refine_group, options=options), items, workers=workers,
-                           scheduler=scheduler)
+            members.append((replace(by_id[f.segment.segment_id], station_index=own), f.ambiguities))
+        states.append({"group": group, "union": union, "stations": stations.subset(union),
+                       "network": _network_part(covariance, union), "members": members,
+                       "current": [(fits[i].chosen, fits[i].params) for i in group],
+                       "name": ",".join(fits[i].segment.segment_id for i in group), "out": None})
+    pending = list(range(len(states)))
+    for _round in range(_JOINT_ROUNDS):
+        pending = [g for g in pending if states[g]["out"] is None
+                   or sum(c in ("fault_patch", "two_patches") for c, _p in states[g]["current"]) >= 2]
+        if not pending:
+            break
+        joint = map_segments(
+            partial(_joint_fields, options=options),
+            [(states[g]["stations"], [det for det, _a in states[g]["members"]], states[g]["network"],
+              states[g]["current"]) for g in pending],
+            workers=workers, scheduler=scheduler)
+        items, owners = [], []
+        for g, (fields, parts) in zip(pending, joint):
+            st = states[g]
+            total = fields.sum(axis=0)
+            for k, (det, _a) in enumerate(st["members"]):
+                start = (st["current"][k][0], parts[k]) if k in parts else None
+                items.append((st["stations"], det, (total - fields[k])[det.station_index], start,
+                              st["network"]))
+                owners.append(g)
+        refits = map_segments(partial(_refit_member, options=options), items, workers=workers,
+                              scheduler=scheduler)
+        still = []
+        for g in pending:
+            st = states[g]
+            out = []
+            for (det, ambiguities), fit in zip(st["members"],
+                                               [f for o, f in zip(owners, refits) if o == g]):
+                flags = fit.flags
+                if ambiguities and fit.sources and "multimodal" not in flags:
+                    flags = flags + ("multimodal",)
+                rows = tuple({**row, "joint_group": st["name"]} for row in fit.sources)
+                out.append(replace(fit, station_index=st["union"][det.station_index], sources=rows,
+                                   flags=flags))
+            if [f.chosen for f in out] != [c for c, _p in st["current"]]:
+                still.append(g)
+            st["current"] = [(f.chosen, f.params) for f in out]
+            st["out"] = out
+        pending = still
     out = list(fits)
-    for group, new in zip(groups, refined):
-        for i, fit in zip(group, new):
+    for st in states:
+        for i, fit in zip(st["group"], st["out"]):
             out[i] = fit
     return tuple(out)
 
@@ -1516,18 +1562,16 @@ def _fit_defaults():
             if par.default is not inspect.Parameter.empty}
 
 
-def _refine_group(item, options):
+def _joint_fields(item, options):
     """
     Worker entry: joint local fit of a group's patch models on the union of
-    their windows (one regional plane, Huber IRLS), then each member re-fitted
-    alone (global search plus the joint solution as a start, model selection
-    again) with the others' joint fields subtracted; its intervals then hold
-    the others fixed. Repeated once more when a member's chosen model
-    changed. Returns one SegmentFit per member, indexed like the original
-    stations.
+    their windows (one regional plane, Huber IRLS), started from the
+    members' current parameters. Returns the members' joint fields over the
+    union's stations ((members, stations) array, zero for members that are
+    not patches) and the joint parameters of the patch members by index.
     """
-    stations, members, union, network = item
-    setups = [_Setup(stations, det, options, network=network) for det, *_ in members]
+    stations, dets, network, current = item
+    setups = [_Setup(stations, det, options, network=network) for det in dets]
     d = np.asarray(stations.sp_mv, dtype=float)
     weight = np.asarray(stations.weight, dtype=float)
     sigma = np.asarray(stations.sigma_mv, dtype=float)
@@ -1546,50 +1590,37 @@ def _refine_group(item, options):
                                          (nth - nth.mean()) / _REGIONAL_SCALE])}
     noise, sig = _station_noise(weight[used], sigma[used],
                                 None if network is None else network.subset(np.flatnonzero(used)))
-    frames = []
-    for setup in setups:
-        s, t = setup.segment.to_local(e, nth)
-        offset = np.where(np.isfinite(elevation) & np.isfinite(setup.ground),
-                          elevation - setup.ground, 0.0)
-        frames.append({"s": np.asarray(s, float), "t": np.asarray(t, float),
-                       "offset": offset, "counter": counter})
-    current = [(chosen, params) for _det, chosen, params, _amb in members]
-    out = None
-    for _round in range(_JOINT_ROUNDS):
-        active = [k for k, (chosen, _p) in enumerate(current)
-                  if chosen in ("fault_patch", "two_patches")]
-        if len(active) < 2 and out is not None:
-            break
-        models = [_Model(current[k][0], frames[k], setups[k].bounds) for k in active]
-        joint_model = _JointModel(models)
-        start = np.concatenate([np.clip(current[k][1], m.lower, m.upper)
-                                for k, m in zip(active, models)])
-        best = _fit_model(joint_model, data, noise, sig, item_seed(options["seed"], "joint"),
-                          n_starts=1, n_local=1, huber=options["huber"],
-                          huber_passes=options["huber_passes"], start=start, search=False)
-        fields = np.zeros((len(members), d.size))
-        parts = dict(zip(active, joint_model.split(best["p"])))
-        for k, m, cs in zip(active, models, joint_model.column_slices):
-            fields[k, used] = m.basis(parts[k]) @ best["x"][cs]
-        total = fields.sum(axis=0)
-        out = []
-        for k, (det, _chosen, _params, ambiguities) in enumerate(members):
-            background = (total - fields[k])[det.station_index]
-            start_k = (current[k][0], parts[k]) if k in parts else None
-            fit = _fit_segment(stations, det, options, background=background, start=start_k,
-                               network=network)
-            flags = fit.flags
-            if ambiguities and fit.sources and "multimodal" not in flags:
-                flags = flags + ("multimodal",)
-            group = ",".join(m[0].segment.segment_id for m in members)
-            rows = tuple({**row, "joint_group": group} for row in fit.sources)
-            out.append(replace(fit, station_index=union[det.station_index], sources=rows,
-                               flags=flags))
-        changed = [f.chosen for f in out] != [c for c, _p in current]
-        current = [(f.chosen, f.params) for f in out]
-        if not changed:
-            break
-    return out
+    active = [k for k, (chosen, _p) in enumerate(current) if chosen in ("fault_patch", "two_patches")]
+    models = []
+    for k in active:
+        s, t = setups[k].segment.to_local(e, nth)
+        offset = np.where(np.isfinite(elevation) & np.isfinite(setups[k].ground),
+                          elevation - setups[k].ground, 0.0)
+        frame = {"s": np.asarray(s, float), "t": np.asarray(t, float), "offset": offset,
+                 "counter": counter}
+        models.append(_Model(current[k][0], frame, setups[k].bounds))
+    joint_model = _JointModel(models)
+    start = np.concatenate([np.clip(current[k][1], m.lower, m.upper) for k, m in zip(active, models)])
+    best = _fit_model(joint_model, data, noise, sig, item_seed(options["seed"], "joint"),
+                      n_starts=1, n_local=1, huber=options["huber"],
+                      huber_passes=options["huber_passes"], start=start, search=False)
+    fields = np.zeros((len(dets), d.size))
+    parts = dict(zip(active, joint_model.split(best["p"])))
+    for k, m, cs in zip(active, models, joint_model.column_slices):
+        fields[k, used] = m.basis(parts[k]) @ best["x"][cs]
+    return fields, parts
+
+
+def _refit_member(item, options):
+    """
+    Worker entry: one member of an interacting group re-fitted alone (global
+    search plus the joint solution as a start, model selection again) with
+    the others' joint fields subtracted as ``background``; its intervals then
+    hold the others fixed.
+    """
+    stations, det, background, start, network = item
+    return _fit_segment(stations, det, options, background=background, start=start,
+                        network=network)
 
 
 def _resolve_overlaps(fits):

@@ -283,7 +283,13 @@ def report_content(state, *, title):
         sections.append({"heading": "Fitted sources", "text": [
             "Each detected segment was fitted by variable-projection least squares with a quasi-random multi-start; "
             "models with no source, one patch, two patches and a shallow pole pair were compared by BIC. "
-            "Ranges are 16th–84th percentiles from profile likelihood."]})
+            "Ranges are 16th–84th percentiles from profile likelihood."]
+            + (["The SP values come from gradient readings, whose errors add up along each line between loop "
+                "crossings; the fits weight the stations by the covariance the loop adjustment implies "
+                "(generalised least squares). Residuals can therefore keep smooth offsets along a line: the fit "
+                "reads them as reduction error, not as source."]
+               if state.reduction is not None and state.reduction.network.get("station_covariance") is not None
+               else [])})
         by_segment = {f.segment.segment_id: f for f in state.fits.fits}
         for row in state.fits.sources:
             fit = by_segment.get(row["segment_id"])

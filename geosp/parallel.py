@@ -147,16 +147,49 @@ def _single_threaded_children():
                 os.environ[name] = value
 
 
+#: The process pool of an active :func:`shared_pool` block, or None.
+_SHARED = None
+
+
+@contextlib.contextmanager
+def shared_pool(workers=None, scheduler=None):
+    """
+    Within the block, :func:`map_segments` calls that use local processes
+    share one pool of ``workers`` spawned processes instead of starting a
+    pool each (a stage that maps several times pays the start-up once).
+    Does nothing with one worker, with a Dask scheduler or inside another
+    such block.
+    """
+    global _SHARED
+    if _SHARED is not None or scheduler or resolve_workers(workers) == 1:
+        yield
+        return
+    context = multiprocessing.get_context("spawn")
+    with _single_threaded_children(), \
+            ProcessPoolExecutor(max_workers=resolve_workers(workers), mp_context=context) as pool:
+        _SHARED = pool
+        try:
+            yield
+        finally:
+            _SHARED = None
+
+
 def _map_processes(func, items, n, progress):
-    results = [None] * len(items)
+    if _SHARED is not None:
+        return _collect(_SHARED, func, items, progress)
     context = multiprocessing.get_context("spawn")
     with _single_threaded_children(), \
             ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
-        futures = {pool.submit(func, item): i for i, item in enumerate(items)}
-        for done, future in enumerate(as_completed(futures), start=1):
-            results[futures[future]] = future.result()
-            if progress is not None:
-                progress(done, len(items))
+        return _collect(pool, func, items, progress)
+
+
+def _collect(pool, func, items, progress):
+    results = [None] * len(items)
+    futures = {pool.submit(func, item): i for i, item in enumerate(items)}
+    for done, future in enumerate(as_completed(futures), start=1):
+        results[futures[future]] = future.result()
+        if progress is not None:
+            progress(done, len(items))
     return results
 
 
