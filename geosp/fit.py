@@ -1082,7 +1082,7 @@ def _profile(best, step, lower, upper, refit, p_best, chi2_min, s2):
 
 def _refine_crossing(inner, outer, evaluate):
     """Value where Δχ²/s² = 1 between two profile points (Brent on √Δ − 1)."""
-    (v0, d0, p0), (v1, d1, p1) = inner, outer
+    (v0, d0, p0), (v1, d1, _) = inner, outer
     if d0 >= 1.0 or not np.isfinite(v1):
         return v1
 
