@@ -22,6 +22,7 @@ For each segment (docs/concepts.md, detection):
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import replace
 
 import numpy as np
@@ -166,11 +167,15 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
     owned = assign_points(data.easting, data.northing, segments, corridor_m=corridor)
     fault_tree = _fault_tree(segments, corridor)
 
+    crowded = set()  # segments whose decoys had to come near mapped faults
+
     def score(j, values):
         if owned[j].size < _MIN_STATIONS:
             return _unscored(segments[j], data.index[owned[j]])
         setup = _SegmentSetup(segments[j], owned[j], data, corridor, depths, ratios, contrasts,
                               int(n_decoys), fault_tree, np.random.default_rng([int(seed), j]))
+        if setup.n_decoys >= _MIN_DECOYS and setup.relax[0] < 1.0:
+            crowded.add(j)
         return _detect_segment(setup, values, data, false_alarm_rate, float(min_score),
                                float(cultural_max_depth_m))
 
@@ -197,6 +202,14 @@ def detect_dipoles(stations, segments, *, corridor_m="auto",
         detections = _resolve_shared(detections, stations, valid_index, corridor)
         if not any(detections[j].detected for j in again):
             break
+    scored = sum(np.isfinite(d.score) for d in detections)
+    if scored and len(crowded) > scored / 2:
+        warnings.warn(
+            f"detect: {len(crowded)} of {scored} segments could only be calibrated with decoys near "
+            f"mapped faults: the {corridor:.0f} m corridor is wide for this survey, so decoys catch real "
+            "anomalies and thresholds rise. If the expected source tops are shallower than the deepest "
+            f"template ({depths.max():g} m), set [detect] template_top_depths_m to shallower depths "
+            "(the corridor is 3 times the deepest).", stacklevel=2)
     return tuple(detections)
 
 

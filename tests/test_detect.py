@@ -1,6 +1,7 @@
 """Tests of dipolar-anomaly detection along fault segments (geosp.detect) and its figure/table."""
 
 import time
+import warnings
 
 import numpy as np
 import numpy.testing as npt
@@ -213,6 +214,24 @@ def test_source_free_fault_beside_a_strong_anomaly_keeps_its_false_alarm_rate():
                                  seed=run)
         hits += bool(free.detected)
     assert stats.binom.sf(hits - 1, 40, 0.01) > 0.01, hits
+
+
+def test_wide_corridor_in_a_small_survey_is_warned_about():
+    # A 4 km survey and templates to 400 m (a 1200 m corridor): the decoys cannot
+    # all keep away from the mapped fault, so the user is told to use shallower
+    # templates. With 50-100 m templates the decoys fit and nothing is said.
+    east, north = _line_survey(2000.0, 25.0, 150.0)
+    faults = (Fault("F1", np.array([[0.0, -600.0], [0.0, 600.0]])),)
+    segments = make_segments(faults, station_spacing_m=25.0)
+    noise = np.random.default_rng(0).normal(0.0, 5.0, east.size)
+    stations = _stations(east, north, _regional(east, north) + noise)
+    with pytest.warns(UserWarning, match="set \\[detect\\] template_top_depths_m to shallower"):
+        (wide,) = detect_dipoles(stations, segments, template_top_depths_m=[100.0, 400.0],
+                                 n_decoys=60, seed=1)
+    assert "some decoys near mapped faults" in wide.note
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        detect_dipoles(stations, segments, template_top_depths_m=[50.0, 100.0], n_decoys=60, seed=1)
 
 
 def test_stations_belong_to_their_nearest_segment(planted):
