@@ -59,6 +59,7 @@ _MARGIN_LINES = 2.0  # data margin around each window, in line spacings
 _BLEND = 0.25  # width of the blending ramp between windows, as a fraction of the window
 _CV_WINDOWS = 10  # windows used for cross-validation when there are more
 _TABLE_STEP = 2.5e-4  # kernel table step, in line spacings
+_MAX_TABLE = 10_000_000  # entries of a kernel table (80 MB): a window wider than this allows is a data error
 _SAMPLE = 3000  # stations sampled to estimate spacings
 _MIN_WINDOW_POINTS = 6  # fewer reduced points than this: the window is skipped
 
@@ -815,6 +816,14 @@ def _grid_stations(stations, method, cell_size_m, tension, damping, block_size_m
     hull = _hull(x, y)
     region = (easting[0], easting[-1], northing[0], northing[-1])
     windows = _Windows.plan(region, len(px), hull.volume, max_points, spacing_line)
+    reach = _table_reach(windows, spacing_line)
+    if reach / _TABLE_STEP > _MAX_TABLE:
+        raise InputError(
+            "stations", f"the stations span {(region[1] - region[0]) / 1000:.0f} × "
+            f"{(region[3] - region[2]) / 1000:.0f} km with lines about {spacing_line:.0f} m apart, so one "
+            f"interpolation window would reach {reach:.0f} line spacings.",
+            "Look for stations with wrong coordinates (a typo or another CRS) and remove them, or grid "
+            "separate survey areas separately.")
 
     if cv != "none":
         fold, cv_used, k = _fold_ids(px, py, pline, cv, cv_folds, spacing_line, angle, seed)

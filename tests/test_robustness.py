@@ -661,18 +661,10 @@ def test_grid_with_a_far_station_fails_cleanly():
     soft, hard = resource.getrlimit(resource.RLIMIT_AS)
     resource.setrlimit(resource.RLIMIT_AS, (size + 8 * 2**30, hard))
     try:
-        with pytest.raises(GeospError):
+        with pytest.raises(GeospError, match="wrong coordinates"):
             grid_stations(stations)
     finally:
         resource.setrlimit(resource.RLIMIT_AS, (soft, hard))
-
-
-test_grid_with_a_far_station_fails_cleanly = pytest.mark.xfail(
-    strict=True, raises=MemoryError,
-    reason="grid.py:586 _cross_validate -> grid.py:123 allocates an array of 4e10 int64 (MemoryError) for a "
-           "station 1e9 m away before max_nodes is checked")(test_grid_with_a_far_station_fails_cleanly)
-
-
 
 
 # Work-arounds: these must succeed (``geosp check``), with the fragment in the summary.
