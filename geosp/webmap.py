@@ -7,8 +7,12 @@ and images are inlined from ``geosp/assets/`` (licences in
 is added unless the user asks for one, so the map works with no network.
 
 Every value that comes from the user's files (ids, names, notes, flags, the
-title) is HTML-escaped before it reaches a popup, tooltip, legend or title:
-folium itself escapes nothing.
+title) passes through :func:`_text` before it reaches a popup, tooltip, legend
+or title. It is HTML-escaped (folium escapes nothing) and its curly braces
+become character references: folium compiles the text it has rendered as a
+Jinja template a second time, so a ``{{ ... }}`` or ``{% ... %}`` in an id
+would otherwise be evaluated as template code. The browser shows ``&#123;``
+as ``{``, so the text still reads verbatim.
 """
 
 from __future__ import annotations
@@ -36,11 +40,15 @@ CAUTIONS = (
 
 _CMAP = "RdBu_r"  # diverging: negative blue, 0 white, positive red
 _GRID_OPACITY = 0.75
-_LOADING = re.compile(
-    r"""(?:\b(?:src|href|data|poster|action)\s*=\s*["']?\s*(?:https?:)?//)"""
-    r"""|(?:url\(\s*["']?\s*(?:https?:)?//)|(?:@import)""",
-    re.IGNORECASE,
-)
+# A URL that leaves the page: http(s):// or protocol-relative //.
+_REMOTE = re.compile(r"^\s*(?:[a-z][a-z0-9+.-]*:)?//", re.IGNORECASE)
+# CSS that loads something: url(...) with a remote target, or any @import.
+_CSS_LOADING = re.compile(
+    r"""url\(\s*["']?\s*(?:[a-z][a-z0-9+.-]*:)?//|@import""", re.IGNORECASE)
+# Attributes through which a browser fetches a resource without a click.
+_LOADING_ATTRIBUTES = frozenset(
+    {"src", "href", "data", "poster", "action", "srcset", "background", "formaction",
+     "manifest", "codebase", "archive", "longdesc", "lowsrc", "dynsrc", "ping", "xlink:href"})
 
 
 # --------------------------------------------------------------------------
@@ -80,11 +88,14 @@ def check_offline(document):
     """
     Raise if an HTML document would load anything from the network.
 
-    Looks for ``src``/``href``/``data`` attributes and CSS ``url()`` or
-    ``@import`` that point to an ``http(s)://`` or protocol-relative URL.
-    (Plain links in text, such as Leaflet's attribution link, load nothing
-    and pass; so does a tile URL the user asked for, which Leaflet receives
-    as a JavaScript string.)
+    The document is parsed as HTML, and only the places where a browser
+    fetches something are examined: attributes such as ``src``, ``href``,
+    ``data`` or ``srcset`` holding an ``http(s)://`` or protocol-relative
+    URL, and CSS ``url()`` or ``@import`` inside ``<style>`` elements and
+    ``style`` attributes. Text is not a resource: an escaped id that reads
+    ``@import 'http://...'`` in a popup or the title loads nothing and
+    passes, as do plain links (``<a href>``, which load only when clicked)
+    and a tile URL the user asked for (a JavaScript string given to Leaflet).
 
     Parameters
     ----------
@@ -94,16 +105,43 @@ def check_offline(document):
     Raises
     ------
     RuntimeError
-        Naming the first offending fragment.
+        Naming the first offending tag or style fragment.
     """
-    for match in _LOADING.finditer(document):
-        start = match.start()
-        fragment = document[max(0, start - 40): start + 80]
-        # An <a href> is a link the user may click, not a load.
-        tag_start = document.rfind("<", 0, start)
-        if tag_start >= 0 and re.match(r"<a\s", document[tag_start:tag_start + 3], re.I):
-            continue
-        raise RuntimeError(f"The web map would load a network resource: {fragment!r}")
+    from html.parser import HTMLParser
+
+    problems = []
+
+    class _Resources(HTMLParser):
+        def __init__(self):
+            super().__init__(convert_charrefs=True)
+            self._in_style = False
+
+        def handle_starttag(self, tag, attrs):
+            self._in_style = tag == "style"
+            for name, value in attrs:
+                value = value or ""
+                if name == "style" and _CSS_LOADING.search(value):
+                    problems.append(f"<{tag} style={value[:80]!r}>")
+                elif name in _LOADING_ATTRIBUTES and tag != "a":
+                    targets = value.split(",") if name == "srcset" else [value]
+                    if any(_REMOTE.match(t) for t in targets):
+                        problems.append(f"<{tag} {name}={value[:80]!r}>")
+
+        def handle_endtag(self, tag):
+            if tag == "style":
+                self._in_style = False
+
+        def handle_data(self, data):
+            if self._in_style:
+                match = _CSS_LOADING.search(data)
+                if match:
+                    problems.append(f"<style> ... {data[match.start():match.start() + 80]!r}")
+
+    parser = _Resources()
+    parser.feed(document)
+    parser.close()
+    if problems:
+        raise RuntimeError(f"The web map would load a network resource: {problems[0]}")
 
 
 # --------------------------------------------------------------------------
@@ -111,9 +149,22 @@ def check_offline(document):
 # --------------------------------------------------------------------------
 
 def _text(value):
+    """User text made safe for the page: HTML-escaped, braces as references."""
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return ""
-    return html.escape(str(value), quote=True)
+    escaped = html.escape(str(value), quote=True)
+    return escaped.replace("{", "&#123;").replace("}", "&#125;")
+
+
+_TEMPLATE_SYNTAX = re.compile(r"\{[{%#]")
+
+
+def _check_tiles(tiles):
+    """A tile URL goes to folium as is (Leaflet needs its ``{z}/{x}/{y}``)."""
+    if tiles and _TEMPLATE_SYNTAX.search(str(tiles)):
+        raise ValueError(
+            f"The tile URL {str(tiles)[:120]!r} contains '{{{{', '{{%' or '{{#'; a tile URL "
+            "uses single braces only, as in https://tiles.example/{z}/{x}/{y}.png.")
 
 
 def _number(value, digits=1):
@@ -455,6 +506,7 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
         folium.Element(f"<script>{_asset('leaflet', 'leaflet.js')}\n{_leaflet_icons_js()}"
                        "</script>"), name="leaflet_js")
 
+    _check_tiles(tiles)
     if tiles:
         folium.TileLayer(tiles=tiles, attr=_text(tiles_attribution) or "Basemap (user tiles)",
                          name="Basemap", overlay=False, control=True).add_to(fmap)

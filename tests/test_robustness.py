@@ -771,7 +771,14 @@ def test_inputs_geosp_can_work_around(build, tmp_path, capsys):
 
 CHROMIUM = "/usr/bin/chromium"
 HOSTILE = ('<img src=x onerror="window.__pwned=1">', "</script><script>window.__pwned=2</script>",
-           '"><svg onload=window.__pwned=3>')
+           '"><svg onload=window.__pwned=3>',
+           # Template syntax: folium compiles rendered text as a Jinja template a
+           # second time, so these would be evaluated (A49B), break the page
+           # ({%raw%}) or trip the offline guard (the escaped @import).
+           "A{{7*7}}B", "{%raw%}", "C{#D", "@import 'http://evil.example.invalid/x.css';",
+           # matplotlib reads $...$ as mathematics (see TEMPLATE_FAULT, which reaches the figures).
+           r"$\frac$")
+TEMPLATE_FAULT = r"F{{6*7}} $\frac$"  # $...$ would be read by matplotlib as mathematics
 
 
 @pytest.mark.slow
@@ -779,28 +786,50 @@ HOSTILE = ('<img src=x onerror="window.__pwned=1">', "</script><script>window.__
 @pytest.mark.skipif(not Path(CHROMIUM).exists(), reason=f"{CHROMIUM} is missing (Debian chromium package)")
 def test_hostile_values_reach_the_pages_as_text_only(tmp_path, capsys):
     """
-    Station ids, a line id, the fault name and the survey name carry markup
-    that runs script if a page inserts it unescaped; after a whole run both
-    pages, opened in chromium, must show it as text and never run it.
+    Station ids, a line id, the fault name, a file name and the survey name
+    carry markup that runs script if a page inserts it unescaped, and
+    template syntax that runs if any text is compiled as a template; after a
+    whole run both pages, opened in chromium, show every value verbatim and
+    never run it, and the GeoPackage and run.json hold it verbatim.
     """
     import json
+    import sqlite3
+    import tomllib
 
     sync_api = pytest.importorskip("playwright.sync_api", reason="python playwright is not installed")
     frame, fault = small_survey()
-    for k, (row, text) in enumerate(zip((3, 60, 150), HOSTILE)):
+    station_ids = {}
+    for k, text in enumerate(HOSTILE):
+        row = 3 + 25 * k
         frame.loc[row, "STN"] = f"{text}-{k}"
+        station_ids[row] = f"{text}-{k}"
     frame.loc[frame.LINE == "L02", "LINE"] = HOSTILE[1]
     # A basemap attribution is user text too (the tiles themselves are blocked below).
     publish = FAST.replace("false", "true") + (f'tiles = "https://tiles.example.invalid/{{z}}/{{x}}/{{y}}.png"\n'
                                                f"tiles_attribution = {json.dumps('Invented tiles ' + HOSTILE[2])}\n")
     project = write_survey(tmp_path / "s", "gpkg", frame=frame, fault=fault, extra_project=publish)
-    gpd.GeoDataFrame({"FAULT": [HOSTILE[0]], "dip": [80.0], "dip_dir": [90.0]}, geometry=[fault], crs=UTM).to_file(
-        project.parent / "faults.gpkg", layer="faults")
+    fault_file = "faults {{7*7}} $x$.gpkg"
+    gpd.GeoDataFrame({"FAULT": [HOSTILE[0] + TEMPLATE_FAULT], "dip": [80.0], "dip_dir": [90.0]},
+                     geometry=[fault], crs=UTM).to_file(project.parent / fault_file, layer="faults")
+    edit(project, 'path = "faults.gpkg"', f"path = {json.dumps(fault_file)}")
     name = " ".join(HOSTILE)
     edit(project, 'name = "Test survey"', f"name = {json.dumps(name)}")  # a TOML basic string
     out = tmp_path / "out"
     code = main(["run", str(project), "--out", str(out), "--workers", "1", "--quiet"])
     assert code == 0, capsys.readouterr().err
+
+    # The GeoPackage holds the ids as given (read with sqlite3, not with geosp).
+    with sqlite3.connect(out / "interpretation.gpkg") as db:
+        ids = {r[0] for r in db.execute("SELECT station_id FROM stations")}
+        lines = {r[0] for r in db.execute("SELECT line_id FROM stations")}
+        faults = {r[0] for r in db.execute("SELECT fault_id FROM fault_segments")}
+    assert set(station_ids.values()) <= ids
+    assert HOSTILE[1] in lines
+    assert faults == {HOSTILE[0] + TEMPLATE_FAULT}
+    # run.json keeps the project text as written and names the input files.
+    provenance = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    assert tomllib.loads(provenance["project_text"])["survey"]["name"] == name
+    assert fault_file in provenance["inputs"]
 
     with sync_api.sync_playwright() as pw:
         browser = pw.chromium.launch(executable_path=CHROMIUM, args=[
@@ -817,12 +846,30 @@ def test_hostile_values_reach_the_pages_as_text_only(tmp_path, capsys):
                 assert page.evaluate("typeof window.__pwned") == "undefined", page_name
                 assert page.evaluate("document.querySelectorAll('img[src=\"x\"], svg[onload]').length") == 0
                 text = page.inner_text("body")
-                # The survey name (all three values) is the title of both pages.
+                # The survey name (every value) is the title of both pages.
                 for value in HOSTILE:
                     assert value in text, (page_name, value)
+                assert "A49B" not in text and "F42" not in text
                 if page_name == "map.html":
                     attribution = page.inner_text(".leaflet-control-attribution")
                     assert "Invented tiles " + HOSTILE[2] in attribution
+                    # Popups and tooltips show a feature's HTML; read it as the browser shows it.
+                    shown = page.evaluate("""() => {
+                        const map = Object.values(window).find(v => v instanceof L.Map);
+                        const out = {stations: [], faults: []};
+                        const as_text = h => { const d = document.createElement('div');
+                                               d.innerHTML = h; return d.textContent; };
+                        map.eachLayer(l => {
+                            const p = l.feature && l.feature.properties;
+                            if (p && p.Station !== undefined) out.stations.push(as_text(p.Station));
+                            if (p && p.Fault !== undefined) out.faults.push(as_text(p.Fault));
+                        });
+                        return out;
+                    }""")
+                    assert set(station_ids.values()) <= set(shown["stations"])
+                    assert set(shown["faults"]) == {HOSTILE[0] + TEMPLATE_FAULT}
+                else:
+                    assert HOSTILE[0] + TEMPLATE_FAULT in text
                 page.close()
         finally:
             browser.close()

@@ -100,6 +100,64 @@ def test_check_offline_rejects_cdn_links():
     check_offline('<a href="https://example.invalid">a link</a>')
 
 
+# Template syntax in user text. folium renders a layer's script and compiles the
+# result again as a Jinja template (branca's MacroElement), so an id that reads
+# "{{ 7*7 }}" would come out as 49, "{% raw %}" would stop the page being
+# built, and an expression reaching Python objects would run on the machine.
+TEMPLATE_IDS = ("A{{7*7}}B", "{%raw%}C", "D{#E", "F{{ self.__init__ }}",
+                "@import 'http://evil.example.invalid/x.css';")
+
+
+def test_template_syntax_in_user_text_is_never_evaluated():
+    inputs = make_inputs(TEMPLATE_IDS[0])
+    stations = inputs["stations"]
+    for k, text in enumerate(TEMPLATE_IDS):
+        stations.loc[k, "station_id"] = text
+        stations.loc[k, "line_id"] = text
+    inputs["segments"].loc[0, "segment_id"] = TEMPLATE_IDS[1]
+    inputs["sources"].loc[0, "flags"] = TEMPLATE_IDS[2]
+    document = make_webmap(**inputs, title=" ".join(TEMPLATE_IDS),
+                           tiles_attribution=TEMPLATE_IDS[3])
+    # Evaluated, {{7*7}} gives "A49B" and {{ self.__init__ }} a bound-method repr.
+    assert "A49B" not in document and "bound method" not in document
+    # No template syntax survives in the page at all: every brace of user
+    # text is a character reference (shown as a brace by the browser).
+    assert "A&#123;&#123;7*7&#125;&#125;B" in document  # in the title
+    # in the layers' JSON, where the page's JSON encoder writes & as \u0026
+    assert "A\\u0026#123;\\u0026#123;7*7\\u0026#125;\\u0026#125;B" in document
+    # Leaflet and geosp's own page code contain no template openers, so any
+    # in the page would have come from user text.
+    for opener in ("{{", "{%", "{#"):
+        assert opener not in document
+    # The escaped @import is text in a popup and the title, not a stylesheet,
+    # so the offline guard lets the map be written.
+    assert "@import &#x27;http://evil.example.invalid/x.css&#x27;" in document
+
+
+def test_tile_url_with_template_syntax_is_refused():
+    inputs = make_inputs("plain")
+    with pytest.raises(ValueError, match="single braces"):
+        make_webmap(**inputs, tiles="https://tiles.example.invalid/{{7*7}}/{x}/{y}.png")
+
+
+def test_check_offline_looks_at_resources_not_text():
+    # Loads: an @import or remote url() in a <style> element or style
+    # attribute, a remote src/srcset/data, an iframe (HTML and CSS specs).
+    for page in ('<style>@import "local.css";</style>',
+                 '<div style="background:url(https://example.invalid/a.png)">x</div>',
+                 '<img srcset="a.png 1x, https://example.invalid/b.png 2x">',
+                 '<object data="//example.invalid/x.swf"></object>',
+                 '<iframe src="http://example.invalid/"></iframe>'):
+        with pytest.raises(RuntimeError, match="network"):
+            check_offline(page)
+    # Text, escaped text and script strings load nothing.
+    for page in ("<p>@import 'http://example.invalid/x.css';</p>",
+                 "<div>url(http://example.invalid/a.png)</div>",
+                 '<script>var t = "https://tiles.example.invalid/{z}/{x}/{y}.png";</script>',
+                 '<img src="data:image/png;base64,AAAA">'):
+        check_offline(page)
+
+
 def test_user_tiles_are_the_only_remote_reference():
     inputs = make_inputs("plain")
     inputs.pop("grid")

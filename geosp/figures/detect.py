@@ -92,7 +92,7 @@ def detection_figure(detections, stations=None, *, ax=None):
         if d.detected:
             mid = xy[len(xy) // 2] if len(xy) > 2 else xy.mean(axis=0)
             ax.annotate(d.segment.segment_id, mid, xytext=(4, 4), textcoords="offset points",
-                        fontsize=7, zorder=4)
+                        fontsize=7, zorder=4, parse_math=False)
     figure.colorbar(ScalarMappable(norm=norm, cmap=cmap), ax=ax,
                     label="score (max |â/σ_â| over templates)")
     handles = [Line2D([], [], color="k", lw=3.5, label="detected"),

@@ -142,7 +142,8 @@ def profiles_figure(fit, stations, *, n_profiles=None):
         if k == 0:
             ax.legend(fontsize=8, loc="best")
     axes[-1].set_xlabel("distance across the trace, toward strike + 90° (m)")
-    figure.suptitle(f"Segment {segment.segment_id}: chosen model {fit.chosen}", fontsize=10)
+    figure.suptitle(f"Segment {segment.segment_id}: chosen model {fit.chosen}", fontsize=10,
+                     parse_math=False)
     return figure
 
 
@@ -187,5 +188,6 @@ def likelihood_figure(fit):
         ax.set_ylabel("Δχ²/s²")
         ax.set_ylim(0.0, max(4.0, float(np.nanmax(dchi2)) * 1.05 if dchi2.size else 4.0))
         ax.legend(fontsize=8)
-    figure.suptitle(f"Segment {fit.segment.segment_id}: profile likelihood", fontsize=10)
+    figure.suptitle(f"Segment {fit.segment.segment_id}: profile likelihood", fontsize=10,
+                     parse_math=False)
     return figure

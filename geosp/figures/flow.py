@@ -69,7 +69,8 @@ def section_figure(result, *, title=None, depth_m=None):
         top.legend(loc="best", fontsize=8)
     top.axhline(0.0, color="0.6", lw=0.6)
     top.set_ylabel("SP (mV)")
-    top.set_title(title if title is not None else (model.title or "Primary-flow section"))
+    top.set_title(title if title is not None else (model.title or "Primary-flow section"),
+                  parse_math=False)
 
     v = _section(result, result.potential_mv)[np.ix_(xs, zs)]
     limit = float(np.nanpercentile(np.abs(v), 99)) or 1.0
@@ -95,7 +96,7 @@ def section_figure(result, *, title=None, depth_m=None):
         visible = shapely.Polygon(np.column_stack([x, z])).buffer(0).intersection(view)
         if not visible.is_empty and visible.area > 0:
             spot = visible.representative_point()
-            sec.text(spot.x, spot.y, name, fontsize=8, ha="center", va="center",
+            sec.text(spot.x, spot.y, name, fontsize=8, parse_math=False, ha="center", va="center",
                      color="0.1", bbox={"fc": "white", "ec": "none", "alpha": 0.6, "pad": 1})
     sec.set_xlim(x0, x1)
     sec.set_ylim(bottom, 0.0)

@@ -67,7 +67,7 @@ def grid_figure(result, stations=None, faults=None, *, title="Gridded SP"):
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.set_xlabel("Easting (m)")
     ax.set_ylabel("Northing (m)")
-    ax.set_title(title)
+    ax.set_title(title, parse_math=False)
     _scale_bar(ax, extent)
     return fig
 

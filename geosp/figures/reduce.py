@@ -111,7 +111,7 @@ def profiles_figure(reduction, max_lines=8):
                     label="flagged")
         ax.set_ylabel("SP (mV)")
         ax.set_xlabel("distance along line (m)")
-        ax.set_title(f"Line {name}")
+        ax.set_title(f"Line {name}", parse_math=False)
         ax.legend(loc="best", fontsize="small")
     fig.suptitle("SP profiles before and after reduction")
     return fig

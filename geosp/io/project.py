@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import difflib
 import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -108,6 +109,8 @@ def _shape_problem(key, value):
         return "must be two numbers, [lowest, highest]."
     if key.endswith("_steps") and isinstance(value, (int, float)) and not isinstance(value, bool) and value < 1:
         return "must be at least 1."
+    if key == "tiles" and isinstance(value, str) and re.search(r"\{[{%#]", value):
+        return "must use single braces, as in https://tiles.example/{z}/{x}/{y}.png."
     return ""
 
 
