@@ -40,12 +40,14 @@ def build_parser():
     p = sub.add_parser("demo", parents=[common], help="run the whole pipeline on the bundled demo area")
     p.add_argument("--out", default="geosp_demo", help="output folder (default: ./geosp_demo)")
     p.add_argument("--workers", type=_workers, default=None, help="parallel fit processes (default: all cores)")
+    _threads_arg(p)
 
     p = sub.add_parser("run", parents=[common], help="run every stage and write every output")
     _project_args(p)
     p.add_argument("--workers", type=_workers, default=None, help="parallel fit processes (default: all cores)")
     p.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
                    help="fan segment fits out over this Dask distributed scheduler")
+    _threads_arg(p)
 
     p = sub.add_parser("check", parents=[common], help="load and validate inputs; print a summary; write nothing")
     p.add_argument("project", type=Path, help="project file (TOML)")
@@ -57,6 +59,7 @@ def build_parser():
         if stage == "fit":
             p.add_argument("--workers", type=_workers, default=None)
             p.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT")
+        _threads_arg(p)
 
     p = sub.add_parser("forward", parents=[common],
                        help="predicted SP of given sources at given stations (survey design)")
@@ -81,6 +84,22 @@ def build_parser():
 def _project_args(p):
     p.add_argument("project", type=Path, help="project file (TOML)")
     p.add_argument("--out", type=Path, default=None, help="output folder (default: geosp_output beside the project file)")
+
+
+def _threads_arg(p):
+    p.add_argument("--threads", type=_threads, default=1, metavar="N",
+                   help="BLAS threads for the run's larger solves (default 1; gridding windows and "
+                        "segment fits always use one, and parallel work comes from --workers)")
+
+
+def _threads(text):
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--threads takes a whole number, not {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError("--threads must be at least 1")
+    return value
 
 
 def _workers(text):
@@ -133,12 +152,14 @@ def _dispatch(args, say, progress):
     elif args.command == "section":
         say(pipeline.format_section(*pipeline.section(args.model, stations=args.stations, out=args.out)))
     elif args.command == "demo":
-        out, state = pipeline.demo(args.out, workers=args.workers, progress=progress, say=say)
+        out, state = pipeline.demo(args.out, workers=args.workers, progress=progress, say=say,
+                                   threads=args.threads)
         say(pipeline.format_run(out, state))
     else:
         stages = pipeline.ORDER if args.command == "run" else (args.command,)
         out, state = pipeline.execute(args.project, stages, out=args.out, workers=getattr(args, "workers", None),
-                                      scheduler=getattr(args, "scheduler", None), progress=progress, say=say)
+                                      scheduler=getattr(args, "scheduler", None), progress=progress, say=say,
+                                      threads=args.threads)
         say(pipeline.format_run(out, state))
     return 0
 

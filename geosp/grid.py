@@ -497,13 +497,9 @@ class _LocalSpline:
 
 def _one_blas_thread():
     """Limit BLAS to one thread: the local systems are small and threads only contend."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # optional; without it BLAS keeps its own setting
-        import contextlib
+    from .parallel import limit_blas
 
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
+    return limit_blas(1)
 
 
 def _fit_windows(windows, region, px, py, pv, pw, tension, damping, scale, targets):

@@ -9,6 +9,7 @@ results whatever runs it.
 from __future__ import annotations
 
 import contextlib
+import functools
 import hashlib
 import logging
 import multiprocessing
@@ -42,6 +43,36 @@ def item_seed(seed, key):
     digest = hashlib.sha256(str(key).encode("utf-8")).digest()
     words = [int.from_bytes(digest[i:i + 4], "little") for i in range(0, 16, 4)]
     return np.random.default_rng(np.random.SeedSequence([int(seed), *words]))
+
+
+def limit_blas(threads=1):
+    """
+    Context manager: BLAS and LAPACK use at most ``threads`` threads within it.
+
+    geosp's linear algebra is many small solves (gridding windows, segment
+    fits, whiteners). On those, a multi-threaded BLAS only adds contention,
+    and on a loaded machine it can be many times slower than one thread;
+    parallel work comes from processes or Dask workers instead.
+
+    Parameters
+    ----------
+    threads : int
+        Highest number of BLAS threads (1 or more).
+
+    Returns
+    -------
+    threadpoolctl.threadpool_limits
+        Restores the previous limits on exit.
+    """
+    from threadpoolctl import threadpool_limits
+
+    return threadpool_limits(limits=int(threads), user_api="blas")
+
+
+def _single_threaded(func, item):
+    """``func(item)`` with one BLAS thread (how every work item runs, wherever it runs)."""
+    with limit_blas(1):
+        return func(item)
 
 
 def resolve_workers(workers):
@@ -111,6 +142,7 @@ def map_segments(func, items, *, workers=None, scheduler=None, progress=None):
     total = len(items)
     if progress is not None:
         progress(0, total)
+    func = functools.partial(_single_threaded, func)
     if scheduler:
         return _map_dask(func, items, scheduler, progress)
     n = resolve_workers(workers)

@@ -489,13 +489,18 @@ def _missing(state, stage):
             "detect": not state.detections, "fit": state.fits is None}[stage]
 
 
-def execute(project_path, stages, *, out=None, workers=None, scheduler=None, progress=None, say=None):
+def execute(project_path, stages, *, out=None, workers=None, scheduler=None, progress=None, say=None,
+            threads=1):
     """
     Run ``stages`` of a project and write their outputs to ``out``.
 
     Earlier stages are taken from the output folder's cache when present
     (so one stage can be re-run after editing the project file) and run
     first otherwise. Stages after a re-run stage are cleared.
+
+    BLAS runs with at most ``threads`` threads for the whole run (default 1:
+    geosp's solves are small, and parallel work comes from ``workers``);
+    gridding windows and segment fits always use one.
 
     Returns
     -------
@@ -532,13 +537,22 @@ def execute(project_path, stages, *, out=None, workers=None, scheduler=None, pro
     if "reduce" in stages:
         state.survey = None  # re-read the inputs
         state.warnings = []
+    from .parallel import limit_blas
+
     t0 = time.perf_counter()
-    run_stages(project, state, stages, workers=workers, scheduler=scheduler, progress=progress, say=say)
-    make_output_dir(out)
-    write_state(out, state)
-    write_outputs(project, state, out, publish="publish" in stages, say=say)
+    with limit_blas(_check_threads(threads)):
+        run_stages(project, state, stages, workers=workers, scheduler=scheduler, progress=progress, say=say)
+        make_output_dir(out)
+        write_state(out, state)
+        write_outputs(project, state, out, publish="publish" in stages, say=say)
     state.timings["total"] = round(time.perf_counter() - t0, 3)
     return out, state
+
+
+def _check_threads(threads):
+    if isinstance(threads, bool) or not isinstance(threads, int) or threads < 1:
+        raise InputError("threads", f"got {threads!r}.", "Give a whole number of BLAS threads, 1 or more.")
+    return threads
 
 
 def write_outputs(project, state, out, *, publish=False, say=None):
@@ -617,9 +631,10 @@ def demo_project_path():
     return path
 
 
-def demo(out, *, workers=None, progress=None, say=None):
+def demo(out, *, workers=None, progress=None, say=None, threads=1):
     """Run the whole pipeline on the bundled demo area into ``out``."""
-    return execute(demo_project_path(), ORDER, out=out, workers=workers, progress=progress, say=say)
+    return execute(demo_project_path(), ORDER, out=out, workers=workers, progress=progress, say=say,
+                   threads=threads)
 
 
 def format_run(out, state):

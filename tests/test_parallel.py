@@ -20,6 +20,24 @@ def _seed_draws(key):
     return item_seed(7, key).random(3)
 
 
+def _blas_threads(_item):
+    from threadpoolctl import threadpool_info
+
+    return sorted({pool["num_threads"] for pool in threadpool_info() if pool["user_api"] == "blas"})
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_every_work_item_runs_with_one_blas_thread(workers):
+    # threadpoolctl reads the BLAS library's own thread count; without a limit
+    # OpenBLAS runs one thread per core (2 here), which stalls small solves.
+    from geosp.parallel import limit_blas
+
+    with limit_blas(2):
+        before = _blas_threads(None)
+        assert map_segments(_blas_threads, [0, 1], workers=workers) == [[1], [1]]
+        assert _blas_threads(None) == before  # the caller's limit is back
+
+
 def test_map_segments_serial_keeps_order_and_reports_progress():
     calls = []
     out = map_segments(math.sqrt, [9.0, 4.0, 1.0], workers=1,
