@@ -119,9 +119,32 @@ def provenance(project, state):
         "crs_note": state.survey.crs_note if state.survey else None,
         "timings_s": state.timings,
         "warnings": state.warnings,
+        "terrain": terrain_result(state),
         "environment": {"python": platform.python_version(), "numpy": numpy.__version__,
                         "scipy": scipy.__version__, "platform": platform.platform()},
     }
+
+
+def terrain_result(state):
+    """
+    The terrain coefficient the run used, for run.json: slope (mV/m), its
+    95 % interval and a 1-sigma equivalent (interval width / (2 × 1.96)),
+    and how it was estimated; None when no terrain correction was applied.
+    """
+    red = state.reduction
+    if red is None or not red.terrain or not red.terrain.get("applied"):
+        return None
+    terrain = red.terrain  # after a second pass, it carries that pass's interval and method
+    out = {}
+    for key in ("slope_mv_per_m", "ci_lo", "ci_hi", "first_pass_slope_mv_per_m", "reference_elevation_m"):
+        value = terrain.get(key)
+        if value is not None and np.isfinite(value):
+            out[key] = round(float(value), 6)
+    if "ci_lo" in out and "ci_hi" in out:
+        out["sd_mv_per_m"] = round((out["ci_hi"] - out["ci_lo"]) / (2 * 1.959964), 6)
+    out["method"] = terrain.get("method", "")
+    out["n_used"] = int(terrain.get("n_used") or 0)
+    return out
 
 
 def _fmt(value, digits=0):

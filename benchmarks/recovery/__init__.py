@@ -1,0 +1,1 @@
+"""Recovery benchmark: synthetic surveys with planted sources, their forward physics and scoring."""
