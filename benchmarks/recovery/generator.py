@@ -293,7 +293,10 @@ def _draw_layout(rng, origin):
         mains = _main_lines(rng, dims, frame)
         ties = _tie_lines(rng, dims, frame, mains)
         n = sum(len(m["xy"]) for m in mains) + sum(len(t["xy"]) for t in ties)
-        if N_STATIONS[0] <= n <= N_STATIONS[1]:
+        # A crew ties every line into the network (else its readings float
+        # free of the reference station): every main line crosses a tie.
+        crossed = {station.rsplit("-", 1)[0] for t in ties for station in t["shared"]}
+        if N_STATIONS[0] <= n <= N_STATIONS[1] and all(m["line"] in crossed for m in mains):
             break
     stn, line, east, north = [], [], [], []
     for item in mains:
