@@ -58,7 +58,6 @@ def run_survey(seed, raw, folder, timeout=DEFAULT_TIMEOUT_S):
     A run that fails or times out scores as finding nothing; its exit code
     and the last lines of its error output are kept.
     """
-    import numpy as np
     import pandas as pd
     from threadpoolctl import threadpool_limits
 
@@ -159,10 +158,13 @@ def _table_row(s):
 
 
 def summary_line(pooled, *, raw):
+    n_false = sum(n for kind, n in pooled["false_by_class"].items() if kind != "below floor")
     return (f"{'raw readings' if raw else 'reduced input'}: {pooled['surveys']} surveys "
             f"({pooled['failed_runs']} failed runs): recall {_fmt(pooled['recall'])} "
             f"({pooled['found']}/{pooled['required']}), precision {_fmt(pooled['precision'])} "
-            f"(false: {sum(pooled['false_by_class'].get(k, 0) for k in pooled['false_by_class'] if k != 'below floor')}), "
+            f"(targets only: recall {_fmt(pooled['target_recall'])}, precision "
+            f"{_fmt(pooled['target_precision'])}) "
+            f"(false: {n_false}), "
             f"median |rel. error| top {_fmt(pooled['median_abs_top_rel_error'])} "
             f"geo-mean {_fmt(pooled['median_abs_geo_rel_error'])}, "
             f"median |error|/CRB top {_fmt(pooled['median_top_over_crb_alone'], 1)} "
@@ -183,6 +185,9 @@ def _doc_table(pooled_by_mode):
         ("planted patches above the floor", lambda p: str(p["required"])),
         ("recall", lambda p: f"{_fmt(p['recall'])} ({p['found']}/{p['required']})"),
         ("precision", lambda p: f"{_fmt(p['precision'])} ({p['claims']} claims)"),
+        ("the same for sources reported as targets (status `target`)",
+         lambda p: f"recall {_fmt(p['target_recall'])}, precision {_fmt(p['target_precision'])} "
+                   f"({p['target_claims']} claims)"),
         ("false sources by class", lambda p: ", ".join(f"{k} {v}" for k, v in sorted(p["false_by_class"].items()))
          or "none"),
         ("median \\|relative error\\| of the top depth", lambda p: _fmt(p["median_abs_top_rel_error"])),

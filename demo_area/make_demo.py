@@ -549,13 +549,8 @@ path = "dem.tif"
 
 '''
 
-_DETECT = '''[detect]
-# The expected tops are shallow (100-300 m), and the survey is small for the
-# default corridor of 3 x 400 m: templates to 200 m give a 600 m corridor, so
-# decoys can be placed away from the mapped faults.
-template_top_depths_m = [50.0, 100.0, 200.0]
-
-# [fit]      # options: see docs/project-file.md (models, bounds, uncertainty, seed, workers)
+_DETECT = '''# [detect]   # options: see docs/project-file.md (false-alarm rate, templates, cultural rivals)
+# [fit]      # options: see docs/project-file.md
 '''
 
 

@@ -41,8 +41,8 @@ COMMANDS_MD = HERE / "commands.md"
 STAGE_FUNCTIONS = {
     "reduce": ("geosp.reduce:reduce_survey",),
     "grid": ("geosp.grid:grid_stations",),
-    "detect": ("geosp.segments:make_segments", "geosp.detect:detect_dipoles"),
-    "fit": ("geosp.fit:fit_segment", "geosp.fit:fit_segments"),
+    "detect": ("geosp.segments:make_segments", "geosp.interpret:detect_sources"),
+    "fit": ("geosp.interpret:fit_sources",),
     "publish": ("geosp.pipeline:publish_options",),
 }
 
@@ -59,8 +59,9 @@ SECTION_INTRO = {
     "dem": "Optional digital elevation model, for station elevations and the terrain correction.",
     "reduce": "Reduction of the readings to total field: drift, ties, loops, terrain, outliers.",
     "grid": "Gridding of the reduced stations into `sp_grid.tif` (for display and QC; fits use the stations).",
-    "detect": "Cutting the faults into segments and detecting dipolar anomalies along them.",
-    "fit": "Fitting source models to each detected segment, model selection and uncertainties.",
+    "detect": ("Cutting the faults into segments, and selecting the sources of the survey model one "
+               "at a time against a calibrated false-alarm rate (each one fitted as it is added)."),
+    "fit": "Uncertainties of the selected sources, from the whole survey model at once.",
     "publish": "The web map and the report.",
 }
 

@@ -16,8 +16,8 @@ examples:
   geosp init survey.toml               write a commented project-file template
   geosp check survey.toml              validate the inputs and print a summary
   geosp run survey.toml --out results  every stage; outputs in results/
-  geosp fit survey.toml --out results --workers 2
-  geosp run survey.toml --scheduler tcp://10.0.0.5:8786   fan fits out over a Dask cluster
+  geosp detect survey.toml --out results --workers 2
+  geosp run survey.toml --scheduler tcp://10.0.0.5:8786   run the source fits on a Dask cluster
   geosp forward results/interpretation.gpkg stations.csv --out predicted.gpkg
   geosp section upflow.toml --stations observed.csv --out section_out
 
@@ -39,14 +39,14 @@ def build_parser():
 
     p = sub.add_parser("demo", parents=[common], help="run the whole pipeline on the bundled demo area")
     p.add_argument("--out", default="geosp_demo", help="output folder (default: ./geosp_demo)")
-    p.add_argument("--workers", type=_workers, default=None, help="parallel fit processes (default: all cores)")
+    p.add_argument("--workers", type=_workers, default=None, help="processes for the source fits (default: [detect] workers, 1)")
     _threads_arg(p)
 
     p = sub.add_parser("run", parents=[common], help="run every stage and write every output")
     _project_args(p)
-    p.add_argument("--workers", type=_workers, default=None, help="parallel fit processes (default: all cores)")
+    p.add_argument("--workers", type=_workers, default=None, help="processes for the source fits (default: [detect] workers, 1)")
     p.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
-                   help="fan segment fits out over this Dask distributed scheduler")
+                   help="run the source fits on this Dask distributed scheduler")
     _threads_arg(p)
 
     p = sub.add_parser("check", parents=[common], help="load and validate inputs; print a summary; write nothing")
@@ -56,9 +56,11 @@ def build_parser():
         p = sub.add_parser(stage, parents=[common], help=f"run the {stage} stage (earlier stages are reused "
                            "from the output folder, or run first)")
         _project_args(p)
-        if stage == "fit":
-            p.add_argument("--workers", type=_workers, default=None)
-            p.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT")
+        if stage == "detect":
+            p.add_argument("--workers", type=_workers, default=None,
+                           help="processes for the source fits (default: [detect] workers, 1)")
+            p.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
+                           help="run the source fits on this Dask distributed scheduler")
         _threads_arg(p)
 
     p = sub.add_parser("forward", parents=[common],

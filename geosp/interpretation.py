@@ -65,25 +65,54 @@ def joint_strengths(row):
 
 
 def _regional(regional, easting, northing):
-    """Evaluate the joint regional plane ``c0 + east·(e − e0) + north·(n − n0)`` stored by the fit step."""
+    """
+    Evaluate the regional of the survey model stored by the fit step: a
+    quadratic in coordinates scaled to the survey's half-size, one per block
+    of a large survey (each over its core's box), or the plane of older runs.
+    """
+    easting = np.asarray(easting, dtype=float)
+    northing = np.asarray(northing, dtype=float)
     if not regional:
         return np.zeros_like(easting)
+    kind = regional.get("kind")
+    if kind == "blocks":
+        out = np.zeros_like(easting)
+        for block in regional["blocks"]:
+            w, e, s, n = block["box"]
+            inside = (easting >= w) & (easting < e) & (northing >= s) & (northing < n)
+            out[inside] = _regional(block, easting[inside], northing[inside])
+        return out
+    if kind == "quadratic":
+        half = regional["half_size_m"]
+        x = (easting - regional["east0_m"]) / half
+        y = (northing - regional["north0_m"]) / half
+        c = regional["coef_mv"]
+        return c[0] + c[1] * x + c[2] * y + c[3] * x * x + c[4] * x * y + c[5] * y * y
     return (regional.get("c0_mv", 0.0)
             + regional.get("east_mv_per_m", 0.0) * (easting - regional.get("east0_m", 0.0))
             + regional.get("north_mv_per_m", 0.0) * (northing - regional.get("north0_m", 0.0)))
 
 
 def source_ground(state, rows):
-    """Ground elevation (m) above each source's top edge, from the DEM when there is one (else None)."""
-    dem = state.survey.dem if state.survey is not None else None
-    if dem is None or not rows:
+    """
+    Ground elevation (m) each source's depths refer to: the row's own
+    ``ground_m`` (the datum of its fit) where it has one, else the DEM
+    above its top edge; None without either.
+    """
+    if not rows:
         return None
+    own = np.array([float(r.get("ground_m", np.nan)) if r.get("ground_m") is not None else np.nan
+                    for r in rows], dtype=float)
+    dem = state.survey.dem if state.survey is not None else None
+    if dem is None:
+        return own if np.isfinite(own).any() else None
     from .grid import sample_grid
 
     x = np.array([r["top_x"] for r in rows], dtype=float)
     y = np.array([r["top_y"] for r in rows], dtype=float)
     ground = sample_grid(dem, x, y)
-    return np.where(np.isfinite(ground), ground, np.nanmedian(state.reduction.stations.upward))
+    ground = np.where(np.isfinite(ground), ground, np.nanmedian(state.reduction.stations.upward))
+    return np.where(np.isfinite(own), own, ground)
 
 
 def checksum(path):
@@ -289,11 +318,26 @@ def report_content(state, *, title):
     if state.detections:
         figures["Fault segments by detection score"] = detect_figures.detection_figure(state.detections, st)
         tables["Detection"] = detect_figures.detection_table(state.detections)
-        sections.append({"heading": "Dipolar anomalies along faults", "text": [
-            "Each fault segment was scored with a matched filter of fault-patch templates, with a regional plane "
-            "projected out. The threshold for 'detected' is calibrated with decoys: copies of the segment placed "
-            "and rotated at random in the survey away from mapped faults."],
-            "figures": ["Fault segments by detection score"], "tables": ["Detection"]})
+        noise = getattr(state, "noise", None) or {}
+        model_text = [
+            "One model of the whole survey was fitted: a constant, a quadratic regional, the SP-elevation "
+            "term and the sources, with a noise model of white station noise, a short-range correlated part "
+            "and (for gradient readings) the loop adjustment's own covariance; every fit is generalised "
+            "least squares. Windows sliding along every mapped fault were scored with fault-patch templates "
+            "against the residual of the current model, and sources were added one at a time where the "
+            "score was highest, as long as the probability that noise alone would score that high anywhere "
+            "in the survey (the false-alarm probability, from simulations of the fitted noise model) stayed "
+            "below the false-alarm rate. A shallow pole pair and a casing competed for every anomaly. "
+            "Segments within five times the rate are marked marginal."]
+        if "white_sd_mv" in noise:
+            model_text.append(
+                f"Noise model: white {noise['white_sd_mv']:.1f} mV, correlated {noise['correlated_sd_mv']:.1f} mV "
+                f"over {noise['correlation_length_m']:.0f} m; score threshold {noise['threshold']:.2f}.")
+        elif "blocks" in noise:
+            model_text.append(f"The survey was modelled in {len(noise['blocks'])} overlapping blocks, each with "
+                              "its own noise model and threshold.")
+        sections.append({"heading": "Dipolar anomalies along faults", "text": model_text,
+                         "figures": ["Fault segments by detection score"], "tables": ["Detection"]})
 
     # Sources
     if state.fits is not None:
@@ -304,9 +348,12 @@ def report_content(state, *, title):
         except ImportError:
             fit_figures = None
         sections.append({"heading": "Fitted sources", "text": [
-            "Each detected segment was fitted by variable-projection least squares with a quasi-random multi-start; "
-            "models with no source, one patch, two patches and a shallow pole pair were compared by BIC. "
-            "Ranges are 16th–84th percentiles from profile likelihood."]
+            "Each source was fitted by variable-projection least squares from several starts across depth "
+            "families and, where the fault map gives no dip, both dip directions. Ranges are 16th–84th "
+            "percentiles from the covariance of the whole model at once (every source, the regional and the "
+            "terrain coefficient), so the terrain and the correlated noise widen them. A source with its top "
+            "depth, dip or position on a bound, or its top depth uncertain by more than a factor of three, is "
+            "reported as uncertain, not as a target."]
             + (["The SP values come from gradient readings, whose errors add up along each line between loop "
                 "crossings; the fits weight the stations by the covariance the loop adjustment implies "
                 "(generalised least squares). Residuals can therefore keep smooth offsets along a line: the fit "
@@ -321,10 +368,6 @@ def report_content(state, *, title):
                 label = f"{row['source_id']}: observed and modelled SP across the fault"
                 figures[label] = fit_figures.profiles_figure(fit, st)
                 names.append(label)
-                if fit.profiles:
-                    label = f"{row['source_id']}: profile likelihood"
-                    figures[label] = fit_figures.likelihood_figure(fit)
-                    names.append(label)
             tables[f"{row['source_id']}: parameters"] = source_parameter_table(row)
             tnames.append(f"{row['source_id']}: parameters")
             if fit is not None and isinstance(fit.selection, pd.DataFrame):
@@ -334,7 +377,7 @@ def report_content(state, *, title):
                              "figures": names, "tables": tnames})
         if not state.fits.sources:
             sections.append({"heading": "No sources", "level": 3,
-                             "text": ["No segment passed model selection; no source is reported."]})
+                             "text": ["No anomaly cleared the false-alarm threshold; no source is reported."]})
     if state.warnings:
         sections.append({"heading": "Warnings", "text": list(state.warnings)})
     return {"title": title, "survey_summary": _summary_rows(state, title), "sections": sections,

@@ -261,6 +261,8 @@ class Detection:
     best_template: dict  # parameters of the best template
     cultural: bool = False  # better explained by a shallow pole pair
     note: str = ""
+    false_alarm_p: float = np.nan  # probability that noise alone scores this high anywhere in the survey
+    marginal: bool = False  # not detected, but within a few times the false-alarm rate
 
 
 @dataclass(frozen=True)

@@ -246,7 +246,10 @@ def _map_dask(func, items, scheduler, progress):
             "Check the address and that the scheduler is running.",
         ) from err
     try:
-        futures = [client.submit(func, item, pure=False) for item in items]
+        # Items can be large (a block's stations, a fit's covariance factor):
+        # send them to the workers directly rather than inside the task graph.
+        scattered = client.scatter(list(items))
+        futures = [client.submit(func, item, pure=False) for item in scattered]
         index = {future.key: i for i, future in enumerate(futures)}
         results = [None] * len(items)
         for done, future in enumerate(dask_completed(futures), start=1):

@@ -24,7 +24,7 @@ from .models import Stations, Survey
 log = logging.getLogger(__name__)
 
 # Options that are computed by the pipeline, not set by users.
-_INTERNAL = {"progress", "station_spacing_m", "covariance"}
+_INTERNAL = {"progress", "station_spacing_m", "covariance", "network", "estimate_terrain", "keep_selection"}
 
 # Faults farther than this from every station are out of reach.
 FAULT_REACH_M = 2000.0
@@ -65,12 +65,11 @@ def publish_options(*, title="", map=True, report=True, tiles="", tiles_attribut
 
 def stage_defaults():
     """``{section: {option: default}}`` for every stage section, from the stage signatures."""
-    from . import detect, fit, grid, reduce, segments
+    from . import grid, interpret, reduce, segments
 
     detect_defaults = _kwonly_defaults(segments.make_segments)
-    detect_defaults.update(_kwonly_defaults(detect.detect_dipoles))
-    fit_defaults = _kwonly_defaults(fit.fit_segment)
-    fit_defaults.update(_kwonly_defaults(fit.fit_segments))
+    detect_defaults.update(_kwonly_defaults(interpret.detect_sources))
+    fit_defaults = _kwonly_defaults(interpret.fit_sources)
     return {
         "reduce": _kwonly_defaults(reduce.reduce_survey),
         "grid": _kwonly_defaults(grid.grid_stations),
@@ -315,9 +314,10 @@ class RunState:
     segments: tuple = ()
     detections: tuple = ()
     fits: object = None
+    selection: object = None  # the survey model after detection (geosp.interpret.Selection)
+    noise: dict = field(default_factory=dict)  # the fitted noise model
     timings: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
-    terrain_first_pass: dict = field(default_factory=dict)
 
 
 def _timed(state, name):
@@ -365,35 +365,50 @@ def run_grid(project, state):
     return state
 
 
-def run_detect(project, state, *, progress=None):
-    from .detect import detect_dipoles
+def run_detect(project, state, *, workers=None, scheduler=None, progress=None):
     from .grid import station_spacing
+    from .interpret import detect_sources
     from .segments import make_segments
 
-    options = project.stages["detect"]
+    options = dict(project.stages["detect"])
+    if workers is not None:
+        options["workers"] = workers
+    if scheduler is not None:
+        options["scheduler"] = scheduler
     stations = state.reduction.stations
     with _timed(state, "detect"), _capture(state):
         spacing = station_spacing(stations)
         state.segments = make_segments(state.survey.faults, station_spacing_m=spacing,
                                        **_pick(options, make_segments))
-        state.detections = detect_dipoles(stations, state.segments, progress=progress,
-                                          **_pick(options, detect_dipoles))
+        state.selection, state.detections = detect_sources(
+            stations, state.segments, network=state.reduction.network.get("station_covariance"),
+            estimate_terrain=_terrain_in_model(state.reduction), progress=progress,
+            **_pick(options, detect_sources))
     return state
 
 
-def run_fit(project, state, *, workers=None, scheduler=None, progress=None):
-    from .fit import fit_segment, fit_segments
+def _terrain_in_model(reduction):
+    """The survey model estimates k unless the terrain correction is off or its slope was given."""
+    terrain = reduction.terrain or {}
+    return bool(terrain.get("applied")) and terrain.get("method") != "slope given in the project file"
 
-    options = dict(project.stages["fit"])
-    if workers is not None:
-        options["workers"] = workers
-    if scheduler is not None:
-        options["scheduler"] = scheduler
-    picked = _pick(options, fit_segments)
-    picked.update(_pick(options, fit_segment))
+
+def run_fit(project, state, *, workers=None, scheduler=None, progress=None):
+    from .interpret import fit_sources
+
     with _timed(state, "fit"), _capture(state):
-        state.fits = fit_segments(state.reduction.stations, state.detections, progress=progress,
-                                  covariance=state.reduction.network.get("station_covariance"), **picked)
+        result = fit_sources(state.selection, state.reduction.stations, state.detections,
+                             network=state.reduction.network.get("station_covariance"))
+        state.fits = result.fits
+        state.noise = result.noise
+        if result.terrain is not None:
+            from dataclasses import replace
+
+            first = state.reduction.terrain or {}
+            terrain = dict(result.terrain, first_pass_slope_mv_per_m=first.get("slope_mv_per_m"))
+            state.reduction = replace(state.reduction, stations=result.stations, terrain=terrain)
+    if result.terrain is not None:
+        run_grid(project, state)  # the grid shows the SP with the model's terrain correction
     return state
 
 
@@ -435,53 +450,11 @@ def run_stages(project, state, stages, *, workers=None, scheduler=None, progress
         elif stage == "grid":
             run_grid(project, state)
         elif stage == "detect":
-            run_detect(project, state, progress=_progress(progress, "detect"))
+            run_detect(project, state, workers=workers, scheduler=scheduler,
+                       progress=_progress(progress, "detect"))
         elif stage == "fit":
             run_fit(project, state, workers=workers, scheduler=scheduler, progress=_progress(progress, "fit"))
-            if _refine_terrain(project, state):
-                say("geosp: terrain slope re-estimated with the fitted sources removed; "
-                    "reduce, grid, detect and fit again ...")
-                run_reduce(project, state)
-                run_grid(project, state)
-                run_detect(project, state, progress=_progress(progress, "detect"))
-                run_fit(project, state, workers=workers, scheduler=scheduler, progress=_progress(progress, "fit"))
-                state.reduction.terrain.update(state.terrain_first_pass)
     return state
-
-
-def _refine_terrain(project, state):
-    """
-    Second pass of the terrain estimate (``[reduce] terrain_refine``).
-
-    When the slope was estimated and fitted sources exist, re-estimate it from
-    every station with the sources removed. If the new slope falls outside
-    the first estimate's 95 % interval, fix it in the project's [reduce]
-    options for this run and return True (the caller re-runs the stages).
-    """
-    from .physics.forward import sources_sp
-    from .reduce import refine_terrain_slope
-
-    terrain = state.reduction.terrain
-    options = project.stages["reduce"]
-    if not (terrain.get("applied") and terrain.get("refine") and state.fits is not None and state.fits.sources):
-        return False
-    st = state.reduction.stations
-    from .interpretation import joint_strengths
-
-    source_mv = sources_sp((st.easting, st.northing), [joint_strengths(r) for r in state.fits.sources])
-    refined = refine_terrain_slope(state.reduction, source_mv)
-    if refined is None or terrain["ci_lo"] <= refined["slope_mv_per_m"] <= terrain["ci_hi"]:
-        return False
-    state.terrain_first_pass = {
-        "first_pass_slope_mv_per_m": terrain["slope_mv_per_m"], "first_pass_ci": (terrain["ci_lo"], terrain["ci_hi"]),
-        "ci_lo": refined["ci_lo"], "ci_hi": refined["ci_hi"], "n_used": refined["n_used"],
-        "method": "Theil-Sen over all stations with the fitted sources removed (second pass), 95 % interval",
-    }
-    options["terrain_slope_mv_per_m"] = refined["slope_mv_per_m"]
-    state.warnings.append(
-        f"Terrain slope re-estimated with the fitted sources removed: {refined['slope_mv_per_m']:.3f} mV/m "
-        f"(first pass {terrain['slope_mv_per_m']:.3f} mV/m away from the faults); the stages were run again.")
-    return True
 
 
 def _missing(state, stage):
@@ -573,7 +546,10 @@ def write_outputs(project, state, out, *, publish=False, say=None):
         layers["fault_segments"] = tables.segments_frame(state.detections, crs)
     if state.fits is not None:
         rows = list(state.fits.sources)
-        layers["sources"] = tables.sources_frame(rows, crs)
+        st = state.reduction.stations
+        reach = state.grid.mask_distance_m if state.grid is not None else 0.0
+        coverage = tables.data_coverage(st.easting, st.northing, reach) if len(st) >= 3 else None
+        layers["sources"] = tables.sources_frame(rows, crs, coverage=coverage)
         layers["sources_3d"] = tables.sources_3d_frame(rows, crs, ground_m=interpretation.source_ground(state, rows))
     write_layers(out / "interpretation.gpkg", layers)
     rasters = interpretation.rasters(state)

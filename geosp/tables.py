@@ -44,7 +44,7 @@ STATION_EXTRAS = ("elev_m", "sigma_mv", "weight")
 #: Fields of the ``fault_segments`` layer, in order (contract), then extras.
 SEGMENT_FIELDS = ("fault_id", "segment_id", "length_m", "n_stations", "score", "detected",
                   "polarity", "note")
-SEGMENT_EXTRAS = ("threshold", "noise_mv", "cultural")
+SEGMENT_EXTRAS = ("threshold", "noise_mv", "cultural", "false_alarm_p", "marginal")
 
 #: Fields of the ``sources`` layer, in order (contract).
 SOURCE_FIELDS = ("source_id", "fault_id", "segment_id", "model", "top_x", "top_y",
@@ -142,8 +142,11 @@ def segments_frame(detections, crs):
     GeoDataFrame
         LineString geometry with :data:`SEGMENT_FIELDS` (``detected`` as 0/1
         integer, ``polarity`` as +1/-1 integer, 0 when undetermined) followed
-        by ``threshold`` (score threshold used), ``noise_mv`` and ``cultural``
-        (0/1: better explained by a shallow pole pair).
+        by ``threshold`` (score threshold used), ``noise_mv``, ``cultural``
+        (0/1: better explained by a shallow pole or pole pair),
+        ``false_alarm_p`` (probability that noise alone scores this high
+        anywhere in the survey) and ``marginal`` (0/1: not detected, but
+        within a few times the false-alarm rate).
     """
     rows, geometry = [], []
     for det in detections:
@@ -160,13 +163,16 @@ def segments_frame(detections, crs):
             "threshold": float(det.threshold),
             "noise_mv": float(det.noise_mv),
             "cultural": int(bool(det.cultural)),
+            "false_alarm_p": float(getattr(det, "false_alarm_p", np.nan)),
+            "marginal": int(bool(getattr(det, "marginal", False))),
         })
         geometry.append(LineString(np.asarray(seg.coords, dtype=float)[:, :2]))
     columns = list(SEGMENT_FIELDS) + list(SEGMENT_EXTRAS)
     frame = pd.DataFrame(rows, columns=columns)
     frame = frame.astype({"n_stations": "int64", "detected": "int64", "polarity": "int64",
                           "cultural": "int64", "length_m": "float64", "score": "float64",
-                          "threshold": "float64", "noise_mv": "float64"})
+                          "threshold": "float64", "noise_mv": "float64", "false_alarm_p": "float64",
+                          "marginal": "int64"})
     frame = gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(geometry, crs=crs), crs=crs)
     frame.attrs["geometry_type"] = "LineString"
     return frame
@@ -299,7 +305,19 @@ def _source_table(rows):
     return pd.DataFrame(data, columns=columns), rows
 
 
-def sources_frame(rows, crs):
+def data_coverage(easting, northing, reach_m):
+    """
+    The area the stations cover: their convex hull widened by ``reach_m``
+    (m). Footprints are clipped to it (what lies beyond the stations is
+    not seen by the data).
+    """
+    import shapely
+
+    points = shapely.multipoints(np.column_stack([easting, northing]))
+    return shapely.convex_hull(points).buffer(float(reach_m))
+
+
+def sources_frame(rows, crs, *, coverage=None):
     """
     Build the ``sources`` layer: one surface-footprint polygon per source.
 
@@ -314,6 +332,10 @@ def sources_frame(rows, crs):
         carry :data:`POLE_PAIR_FIELDS`.
     crs : str
         Working CRS of ``top_x``/``top_y``.
+    coverage : shapely Polygon or None
+        Clip every footprint to this area (see :func:`data_coverage`); a
+        footprint wholly outside it keeps its shape (the row is still the
+        model's).
 
     Returns
     -------
@@ -348,7 +370,13 @@ def sources_frame(rows, crs):
     below ground, positive down.
     """
     table, rows = _source_table(rows)
-    geometry = gpd.GeoSeries([_footprint(r) for r in rows], crs=crs)
+    shapes = [_footprint(r) for r in rows]
+    if coverage is not None:
+        clipped = [shape.intersection(coverage) for shape in shapes]
+        shapes = [c if c.geom_type == "Polygon" and not c.is_empty else
+                  (max(c.geoms, key=lambda g: g.area) if hasattr(c, "geoms") and c.area > 0 else shape)
+                  for c, shape in zip(clipped, shapes)]
+    geometry = gpd.GeoSeries(shapes, crs=crs)
     frame = gpd.GeoDataFrame(table, geometry=geometry, crs=crs)
     frame.attrs["geometry_type"] = "Polygon"
     return frame

@@ -244,45 +244,65 @@ def _station_properties(row, cmap, amplitude):
     }
 
 
-def _score_colour(score, detected):
-    if not detected:
-        return "#7f7f7f"
-    try:
-        score = float(score)
-    except (TypeError, ValueError):
-        score = 0.0
-    if score >= 5:
-        return "#a50026"
-    if score >= 3:
-        return "#f46d43"
-    return "#fdae61"
+#: Fault segment styles by decision: colours kept apart from the SP ramp.
+_SEGMENT_STYLE = {
+    "detected": ("#000000", 5, None),
+    "marginal": ("#1b7837", 3, "8 5"),
+    "cultural": ("#8c510a", 3, "2 5"),
+    "no": ("#7f7f7f", 2, "6 6"),
+}
+
+
+def _segment_decision(row):
+    if int(row.get("detected", 0) or 0):
+        return "detected"
+    if int(row.get("cultural", 0) or 0):
+        return "cultural"
+    if int(row.get("marginal", 0) or 0):
+        return "marginal"
+    return "no"
 
 
 def _segment_properties(row):
-    detected = int(row.get("detected", 0) or 0)
+    decision = _segment_decision(row)
     polarity = row.get("polarity", 0)
     try:
         polarity = int(polarity)
     except (TypeError, ValueError):
         polarity = 0
+    colour, weight, dash = _SEGMENT_STYLE[decision]
+    words = {"detected": "yes: a source was found", "marginal": "marginal: below the threshold, "
+             "within a few times the false-alarm rate", "cultural": "explained by a cultural source",
+             "no": "no"}
     return {
         "Fault": _text(row.get("fault_id")),
         "Segment": _text(row.get("segment_id")),
         "Score": _number(row.get("score"), 2),
-        "Detected": "yes" if detected else "no",
+        "Threshold": _number(row.get("threshold"), 2),
+        "False-alarm probability": _number(row.get("false_alarm_p"), 3),
+        "Detected": words[decision],
         "Polarity": {1: "+1", -1: "−1"}.get(polarity, "–"),
         "Stations": _text(row.get("n_stations")),
         "Note": _text(row.get("note")) or "–",
-        "_colour": _score_colour(row.get("score"), detected),
-        "_weight": 5 if detected else 2,
-        "_dash": None if detected else "6 6",
+        "_colour": colour,
+        "_weight": weight,
+        "_dash": dash,
     }
+
+
+#: Source footprint styles by status.
+_SOURCE_STYLE = {"target": ("#7b3294", 2.5, None, 0.15), "uncertain": ("#7b3294", 1.5, "5 5", 0.04),
+                 "cultural": ("#8c510a", 1.5, "2 4", 0.08)}
 
 
 def _source_properties(row):
     model = str(row.get("model", ""))
+    status = str(row.get("status") or ("cultural" if model == "pole_pair" else "target"))
+    colour, weight, dash, fill = _SOURCE_STYLE.get(status, _SOURCE_STYLE["target"])
     props = {
         "Source": _text(row.get("source_id")),
+        "Status": {"target": "target", "uncertain": "uncertain (a depth or its position is not "
+                   "resolved: not a target)", "cultural": "likely cultural"}.get(status, _text(status)),
         "Model": _text(model),
         "Fault / segment": f"{_text(row.get('fault_id'))} / {_text(row.get('segment_id'))}",
     }
@@ -308,6 +328,7 @@ def _source_properties(row):
         "χ² (reduced)": _number(row.get("chi2_red"), 2),
         "BIC gain": _number(row.get("bic_gain"), 1),
         "Flags": _text(row.get("flags")) or "–",
+        "_colour": colour, "_weight": weight, "_dash": dash, "_fill": fill,
     })
     return props
 
@@ -527,8 +548,11 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
     if frame is not None and len(frame):
         props = [_source_properties(r) for r in frame.to_dict("records")]
         _add_geojson(folium, groups["sources"], frame, props, tooltip_field="Source",
-                     style=lambda f: {"color": "#7b3294", "weight": 2, "fillColor": "#7b3294",
-                                      "fillOpacity": 0.12})
+                     style=lambda f: {"color": f["properties"]["_colour"],
+                                      "weight": f["properties"]["_weight"],
+                                      "dashArray": f["properties"]["_dash"],
+                                      "fillColor": f["properties"]["_colour"],
+                                      "fillOpacity": f["properties"]["_fill"]})
     frame = layers["segments"]
     if frame is not None and len(frame):
         props = [_segment_properties(r) for r in frame.to_dict("records")]

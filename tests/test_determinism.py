@@ -27,13 +27,8 @@ pytestmark = pytest.mark.slow
 E0, N0 = 500000.0, 4500000.0
 OPTIONS = """
 [detect]
-n_decoys = 20
-corridor_m = 300.0
-
-[fit]
-n_starts = 32
-uncertainty = "jacobian"
-models = ["fault_patch"]
+n_null = 300
+n_starts = 16
 
 [publish]
 map = false

@@ -1,5 +1,5 @@
 """
-Tests of the segment executors (geosp.parallel) and executor independence of fits.
+Tests of the executors (geosp.parallel).
 """
 
 import math
@@ -9,11 +9,7 @@ import numpy.testing as npt
 import pytest
 
 from geosp.errors import OptionError
-from geosp.fit import fit_segments
-from geosp.models import Detection, Stations
 from geosp.parallel import item_seed, map_segments, resolve_workers
-
-from test_fit import FAST, TRUTH, make_segment, make_survey
 
 
 def _seed_draws(key):
@@ -74,33 +70,18 @@ def test_bad_scheduler_address():
         map_segments(math.sqrt, [1.0], scheduler="localhost:8786")
 
 
-def _three_segment_survey():
-    parts = []
-    for i, (strike, jump) in enumerate(((30.0, 100.0), (120.0, -80.0), (75.0, 60.0))):
-        seg = make_segment(name=f"F{i + 1}-1", strike_deg=strike,
-                           origin=(512000.0 + 6000.0 * i, 4180000.0))
-        parts.append(make_survey(seg, truth=dict(TRUTH, jump=jump), n_lines=4, spacing_m=50.0,
-                                 seed=20 + i))
-    stations = Stations(
-        np.concatenate([p[0].station_id for p in parts]),
-        np.concatenate([p[0].easting for p in parts]),
-        np.concatenate([p[0].northing for p in parts]),
-        np.zeros(sum(len(p[0]) for p in parts)),
-        np.concatenate([p[0].sp_mv for p in parts]), "EPSG:32633",
-        sigma_mv=np.ones(sum(len(p[0]) for p in parts)))
-    detections, start = [], 0
-    for st, det in parts:
-        detections.append(Detection(det.segment, np.arange(len(st)) + start, len(st), 10.0, 1,
-                                    True, 4.0, 1.0, {}))
-        start += len(st)
-    return stations, detections
+def test_missing_dask_gives_install_hint(monkeypatch):
+    import sys
+
+    # A None entry in sys.modules makes the import fail as if dask were absent.
+    monkeypatch.setitem(sys.modules, "dask.distributed", None)
+    with pytest.raises(OptionError, match="pip install"):
+        map_segments(math.sqrt, [1.0], scheduler="tcp://127.0.0.1:8786")
 
 
-def _assert_same(a, b):
-    assert [f.chosen for f in a.fits] == [f.chosen for f in b.fits]
-    npt.assert_array_equal(a.model_mv, b.model_mv)
-    assert len(a.sources) == len(b.sources)
-    for ra, rb in zip(a.sources, b.sources):
+def _assert_same_rows(a, b):
+    assert len(a) == len(b)
+    for ra, rb in zip(a, b):
         assert ra.keys() == rb.keys()
         for key in ra:
             if isinstance(ra[key], float):
@@ -110,29 +91,45 @@ def _assert_same(a, b):
 
 
 @pytest.mark.slow
-def test_fit_results_identical_across_executors():
-    # Each segment's random numbers come from (seed, segment_id), so the serial
-    # run, a process pool and a Dask cluster must agree bit for bit.
-    stations, detections = _three_segment_survey()
-    options = dict(models=("fault_patch", "pole_pair"), uncertainty="profile", seed=11, **FAST)
-    serial = fit_segments(stations, detections, workers=1, **options)
-    assert len(serial.sources) == 3
-    pooled = fit_segments(stations, detections, workers=2, **options)
-    _assert_same(serial, pooled)
+def test_blocked_survey_model_is_identical_across_executors(monkeypatch):
+    # A survey cut into blocks: every block is one work item whose random
+    # numbers come from (seed, block number), so the serial run, a process
+    # pool and a Dask cluster must agree bit for bit.
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).parent / "interpret"))
+    from interpret_synthetic import E0, N0, build_survey, patch
+
+    from geosp.interpret import blocks, detect_sources, fit_sources
+    from geosp.models import Fault
+
+    faults = [Fault("FA", np.array([[E0 + 600.0, N0 - 500.0], [E0 + 600.0, N0 + 2500.0]])),
+              Fault("FB", np.array([[E0 + 1500.0, N0 - 500.0], [E0 + 1500.0, N0 + 2500.0]]))]
+    shape = dict(top_depth_m=100.0, bottom_depth_m=400.0, length_m=800.0)
+    planted = [patch(E0 + 600.0, N0 + 600.0, jump_mv=160.0, **shape),
+               patch(E0 + 1500.0, N0 + 900.0, jump_mv=-150.0, **shape)]
+    stations, segments, _ = build_survey(sources=planted, faults=faults, white=2.0, seed=5, extent=2100.0,
+                                         n_lines=11, spacing=40.0, line_spacing=180.0)
+    # Small blocks for a small survey (the defaults cut only surveys of thousands of stations).
+    monkeypatch.setattr(blocks, "MAX_BLOCK_STATIONS", 400)
+    monkeypatch.setattr(blocks, "MARGIN_M", 400.0)
+    plan = blocks.plan_blocks(stations.easting, stations.northing)
+    assert len(plan) >= 4
+    options = dict(n_null=200, n_starts=4, seed=3)
+
+    def run(**executor):
+        selection, detections = detect_sources(stations, segments, **options, **executor)
+        return fit_sources(selection, stations, detections)
+
+    serial = run(workers=1)
+    assert sorted(r["fault_id"] for r in serial.fits.sources) == ["FA", "FB"]
+    pooled = run(workers=2)
+    _assert_same_rows(serial.fits.sources, pooled.fits.sources)
+    npt.assert_array_equal(serial.fits.model_mv, pooled.fits.model_mv)
     distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, host="127.0.0.1",
                                   dashboard_address=None, processes=True) as cluster:
-        calls = []
-        on_dask = fit_segments(stations, detections, scheduler=cluster.scheduler_address,
-                               progress=lambda i, n: calls.append(i), **options)
-    _assert_same(serial, on_dask)
-    assert calls[-1] == 3
-
-
-def test_missing_dask_gives_install_hint(monkeypatch):
-    import sys
-
-    # A None entry in sys.modules makes the import fail as if dask were absent.
-    monkeypatch.setitem(sys.modules, "dask.distributed", None)
-    with pytest.raises(OptionError, match="pip install"):
-        map_segments(math.sqrt, [1.0], scheduler="tcp://127.0.0.1:8786")
+        on_dask = run(scheduler=cluster.scheduler_address)
+    _assert_same_rows(serial.fits.sources, on_dask.fits.sources)
+    npt.assert_array_equal(serial.terrain["slope_mv_per_m"], on_dask.terrain["slope_mv_per_m"])

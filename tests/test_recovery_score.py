@@ -130,3 +130,16 @@ def test_one_claim_cannot_find_two_patches():
     long_row = answer_row(p1, top_y=2250.0, length_m=3500.0)
     s = score.score_survey(truth, result([long_row]))
     assert s["n_found"] == 1 and s["n_false"] == 0
+
+
+def test_targets_only_counts_leave_out_uncertain_sources():
+    truth = make_truth()
+    p1, p2, _ = truth["patches"]
+    rows = [answer_row(p1, status="target"), answer_row(p2, status="uncertain"),
+            answer_row(p1, source_id="free", fault_id="F02", top_x=3020.0, top_y=800.0, status="uncertain"),
+            answer_row(p1, source_id="gap", top_y=2350.0, length_m=400.0, status="target")]
+    pooled = score.pool([score.score_survey(truth, result(rows))])
+    assert pooled["recall"] == 1.0 and pooled["precision"] == pytest.approx(2 / 4)
+    # targets: P1 found (P2's source is uncertain); the claims are P1's and the one in the gap
+    assert pooled["target_recall"] == pytest.approx(1 / 2)
+    assert pooled["target_precision"] == pytest.approx(1 / 2)

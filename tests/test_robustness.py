@@ -30,16 +30,12 @@ from geosp.cli import main
 from geosp.io.atomic import OUTPUT_NAMES
 from tests.conftest import UTM, small_survey, write_survey
 
-# Options that keep a whole run on the small survey to a few seconds (fewer decoys and
+# Options that keep a whole run on the small survey to a few seconds (fewer bootstrap draws and
 # starts than the defaults; the numbers are not looked at here).
 FAST = textwrap.dedent("""
     [detect]
-    n_decoys = 20
-
-    [fit]
-    n_starts = 32
-    uncertainty = "jacobian"
-    models = ["fault_patch"]
+    n_null = 200
+    n_starts = 8
     workers = 1
 
     [publish]
@@ -431,14 +427,14 @@ def c_project_unknown_section(tmp):
 
 def c_project_bad_type(tmp):
     p = project_with(tmp)
-    p.write_text(p.read_text() + '\n[detect]\nn_decoys = "many"\n')
-    return Case(p, ("project.toml", "n_decoys", "wrong type", "a number"))
+    p.write_text(p.read_text() + '\n[detect]\nn_null = "many"\n')
+    return Case(p, ("project.toml", "n_null", "wrong type", "a number"))
 
 
 def c_project_bad_bool(tmp):
     p = project_with(tmp)
-    p.write_text(p.read_text() + '\n[fit]\nhuber = "yes"\n')
-    return Case(p, ("project.toml", "huber", "true or false"))
+    p.write_text(p.read_text() + '\n[detect]\ncultural = "yes"\n')
+    return Case(p, ("project.toml", "cultural", "true or false"))
 
 
 def c_project_no_faults(tmp):
@@ -486,8 +482,8 @@ def c_project_crs_unknown(tmp):
 
 def c_project_bad_option_value(tmp):
     p = project_with(tmp)
-    p.write_text(p.read_text() + '\n[fit]\nuncertainty = "none"\n')
-    return Case(p, ("uncertainty", "jacobian"))
+    p.write_text(p.read_text() + '\n[detect]\nfalse_alarm_rate = 2.0\n')
+    return Case(p, ("false_alarm_rate", "between 0 and 1"))
 
 
 def c_out_is_an_input_file(tmp):
@@ -599,40 +595,31 @@ def c_grid_method_unknown(tmp):
     return Case(project_with(tmp, extra=FAST + '\n[grid]\nmethod = "kriging"\n'), ("method = 'kriging'", "tension_spline"))
 
 
-def c_fit_model_unknown(tmp):
-    return Case(project_with(tmp, extra=FAST.replace('models = ["fault_patch"]', 'models = ["blob"]')),
-                ("models", "'blob'", "fault_patch"))
+def c_detect_height_ratio_below_one(tmp):
+    return Case(project_with(tmp, extra=FAST.replace("workers = 1", "workers = 1\ntemplate_height_ratios = [0.5]")),
+                ("template_height_ratios", "above 1"))
 
 
-def c_fit_workers_zero_in_project(tmp):
+def c_detect_workers_zero_in_project(tmp):
     return Case(project_with(tmp, extra=FAST.replace("workers = 1", "workers = 0")), ("workers", "positive whole number"),
                 workers=False)
 
 
-# Bad stage options that end in an internal error (exit 1) inside a processing step; each
-# is expected to fail until the step validates the option.
-
-def x_detect_template_depth_text(tmp):
-    return Case(project_with(tmp, extra=FAST.replace("n_decoys = 20", 'n_decoys = 20\ntemplate_top_depths_m = ["a"]')),
+def c_detect_template_depth_text(tmp):
+    return Case(project_with(tmp, extra=FAST.replace("workers = 1", 'workers = 1\ntemplate_top_depths_m = ["a"]')),
                 ("template_top_depths_m",))
 
 
-def x_fit_dip_range_one_value(tmp):
-    return Case(project_with(tmp, extra=FAST.replace("workers = 1", "workers = 1\ndip_range_deg = [30]")),
-                ("dip_range_deg",))
-
-
-def x_fit_negative_seed(tmp):
+def c_detect_negative_seed(tmp):
     return Case(project_with(tmp, extra=FAST.replace("workers = 1", "workers = 1\nseed = -1")), ("seed",))
 
 
-def x_grid_negative_seed(tmp):
+def c_detect_null_too_small(tmp):
+    return Case(project_with(tmp, extra=FAST.replace("n_null = 200", "n_null = 5")), ("n_null", "100"))
+
+
+def c_grid_negative_seed(tmp):
     return Case(project_with(tmp, extra=FAST + "\n[grid]\nseed = -1\n"), ("seed",))
-
-
-def x_fit_mcmc_zero_steps(tmp):
-    return Case(project_with(tmp, extra=FAST.replace('uncertainty = "jacobian"', 'uncertainty = "mcmc"\nmcmc_steps = 0')),
-                ("mcmc_steps",))
 
 
 def test_grid_with_a_far_station_fails_cleanly():
@@ -724,7 +711,6 @@ def ok_line_with_one_station(tmp):
 
 CASES = [v for k, v in sorted(globals().items()) if k.startswith("c_")]
 # These were failures of the stage code (exit 1); the project loader now refuses them with exit 2.
-CASES += [pytest.param(v, id=k[2:]) for k, v in sorted(globals().items()) if k.startswith("x_")]
 OK_CASES = [v for k, v in sorted(globals().items()) if k.startswith("ok_")]
 
 

@@ -59,6 +59,8 @@ counts as a correct source but not toward recall, missing one is not counted aga
   cultural source (within 400 m of a pipeline or casing pole), on a source-free fault, or
   elsewhere. `pole_pair` rows (geosp's own "cultural or near-surface") are not claims of a
   fault source.
+- *Targets*: the same two figures counting only the sources geosp reports with `status` =
+  `target` (those it draws as uncertain left out, on either side of the count).
 - *Errors*: the top depth and the geometric-mean depth √(top·bottom) of each found patch,
   compared as elevations (a reported depth refers to the reported `ground_m`).
 - *Cramér–Rao σ*: the best standard deviation any unbiased estimator can reach on that survey's

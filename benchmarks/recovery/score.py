@@ -296,6 +296,12 @@ def score_survey(truth, result, bounds=None):
     counted_false = sum(n for kind, n in classes.items() if kind != "below floor")
     true_claims = len(matches)
     errors = [patch_errors(matches[p["patch_id"]], p, bounds.get(p["patch_id"])) for p in found]
+    # The same counts for the sources geosp calls targets (status "target"),
+    # leaving out those it draws as uncertain.
+    is_target = lambda row: str(row.get("status", "target")) == "target"  # noqa: E731
+    target_found = [p for p in found if is_target(matches[p["patch_id"]])]
+    target_true = sum(is_target(r) for r in matches.values())
+    target_false = sum(is_target(r) for r, kind in false if kind != "below floor")
     terrain = result.get("terrain") or {}
     k_true = truth["terrain"]["k_mv_per_m"]
     k = _number(terrain.get("slope_mv_per_m"))
@@ -308,6 +314,8 @@ def score_survey(truth, result, bounds=None):
         "n_true_claims": true_claims + classes.get("below floor", 0),
         "n_false": counted_false, "false_by_class": classes, "n_other_models": len(other),
         "patches": errors,
+        "n_target_found": len(target_found), "n_target_claims": target_true + target_false,
+        "n_target_true": target_true,
         "terrain_true": k_true, "terrain": k, "terrain_sd": k_sd,
         "terrain_z": (k - k_true) / k_sd if math.isfinite(k) and math.isfinite(k_sd) and k_sd > 0 else math.nan,
     }
@@ -350,8 +358,14 @@ def pool(scores):
         for kind, n in s["false_by_class"].items():
             classes[kind] = classes.get(kind, 0) + n
     terrain_z = [s["terrain_z"] for s in scores if math.isfinite(s["terrain_z"])]
+    target_claims = sum(s.get("n_target_claims", 0) for s in scores)
+    target_true = sum(s.get("n_target_true", 0) for s in scores)
+    target_found = sum(s.get("n_target_found", 0) for s in scores)
     return {
         "surveys": len(scores), "failed_runs": sum(not s["ok"] for s in scores),
+        "target_recall": target_found / required if required else math.nan,
+        "target_precision": target_true / target_claims if target_claims else math.nan,
+        "target_claims": target_claims,
         "required": required, "found": found, "claims": claims,
         "recall": found / required if required else math.nan,
         "precision": true_claims / claims if claims else math.nan,

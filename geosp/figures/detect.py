@@ -7,7 +7,7 @@ import pandas as pd
 
 #: Columns of :func:`detection_table`, in order.
 TABLE_COLUMNS = ("fault_id", "segment_id", "length_m", "n_stations", "score", "threshold",
-                 "polarity", "detected", "cultural", "note")
+                 "false_alarm_p", "polarity", "detected", "marginal", "cultural", "note")
 
 
 def detection_table(detections):
@@ -22,9 +22,10 @@ def detection_table(detections):
     -------
     table : pandas.DataFrame
         Columns ``fault_id``, ``segment_id``, ``length_m`` (m),
-        ``n_stations``, ``score``, ``threshold``, ``polarity`` (+1/−1, 0 when
-        not scored), ``detected``, ``cultural`` and ``note``; segments that
-        could not be scored (NaN score) come last.
+        ``n_stations``, ``score``, ``threshold``, ``false_alarm_p``,
+        ``polarity`` (+1/−1, 0 when not scored), ``detected``, ``marginal``,
+        ``cultural`` and ``note``; segments that could not be scored (NaN
+        score) come last.
     """
     rows = [{
         "fault_id": d.segment.fault_id,
@@ -33,8 +34,10 @@ def detection_table(detections):
         "n_stations": int(d.n_stations),
         "score": float(d.score),
         "threshold": float(d.threshold),
+        "false_alarm_p": float(getattr(d, "false_alarm_p", np.nan)),
         "polarity": int(d.polarity),
         "detected": bool(d.detected),
+        "marginal": bool(getattr(d, "marginal", False)),
         "cultural": bool(d.cultural),
         "note": d.note,
     } for d in detections]

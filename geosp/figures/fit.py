@@ -1,4 +1,4 @@
-"""Figures and tables of the fit step: profiles across the fault, likelihood curves, parameters."""
+"""Figures and tables of the fit step: profiles across the fault and parameters."""
 
 from __future__ import annotations
 
@@ -50,10 +50,10 @@ def parameter_table(fit):
     table : pandas.DataFrame
         Columns ``source_id``, ``parameter`` (with units), ``value``,
         ``sd`` (linearised 1σ), ``p16`` and ``p84`` (16th and 84th
-        percentiles) and ``interval`` ("16–84 %" when the bounds
-        come from the fit's interval method (profile likelihood or MCMC),
-        "±1σ" when they are the linearised value ± 1σ, blank when unknown). Empty when no source was
-        accepted.
+        percentiles) and ``interval`` ("16–84 %" when the row carries
+        percentiles, from the covariance of the whole model with depths in
+        logarithms; "±1σ" when they are the linearised value ± 1σ, blank
+        when unknown). Empty when no source was accepted.
     """
     rows = []
     for source in fit.sources:
@@ -143,51 +143,5 @@ def profiles_figure(fit, stations, *, n_profiles=None):
             ax.legend(fontsize=8, loc="best")
     axes[-1].set_xlabel("distance across the trace, toward strike + 90° (m)")
     figure.suptitle(f"Segment {segment.segment_id}: chosen model {fit.chosen}", fontsize=10,
-                     parse_math=False)
-    return figure
-
-
-def likelihood_figure(fit):
-    """
-    Profile-likelihood curves (Δχ²/s²) of the first source's top depth and jump.
-
-    The dashed line Δχ²/s² = 1 meets each curve at the 16 % and 84 % bounds.
-
-    Parameters
-    ----------
-    fit : SegmentFit
-
-    Returns
-    -------
-    figure : matplotlib.figure.Figure
-        One panel per curve in ``fit.profiles``; a note when there is none
-        (no source accepted, or another uncertainty method).
-    """
-    names = [name for name in ("top_depth_m", "jump_mv") if name in (fit.profiles or {})]
-    labels = {"top_depth_m": ("top depth (m)", "top_depth_lo_m", "top_depth_hi_m"),
-              "jump_mv": ("jump (mV)", "jump_lo_mv", "jump_hi_mv")}
-    figure = Figure(figsize=(4.0 * max(len(names), 1), 3.2), layout="constrained")
-    if not names:
-        ax = figure.subplots()
-        ax.text(0.5, 0.5, "no profile-likelihood curves for this segment", ha="center",
-                va="center", transform=ax.transAxes)
-        ax.set_axis_off()
-        return figure
-    axes = np.atleast_1d(figure.subplots(1, len(names)))
-    row = fit.sources[0] if fit.sources else {}
-    for ax, name in zip(axes, names):
-        values, dchi2 = (np.asarray(v, dtype=float) for v in fit.profiles[name])
-        order = np.argsort(values)
-        ax.plot(values[order], dchi2[order], "o-", ms=3, color="tab:blue")
-        ax.axhline(1.0, color="tab:red", ls="--", lw=1.0, label="Δχ²/s² = 1 (16–84 %)")
-        label, lo_key, hi_key = labels[name]
-        for key in (lo_key, hi_key):
-            if key in row and np.isfinite(row[key]):
-                ax.axvline(row[key], color="0.5", lw=0.8, ls=":")
-        ax.set_xlabel(label)
-        ax.set_ylabel("Δχ²/s²")
-        ax.set_ylim(0.0, max(4.0, float(np.nanmax(dchi2)) * 1.05 if dchi2.size else 4.0))
-        ax.legend(fontsize=8)
-    figure.suptitle(f"Segment {fit.segment.segment_id}: profile likelihood", fontsize=10,
                      parse_math=False)
     return figure

@@ -2,7 +2,6 @@
 
 from pathlib import Path
 
-import numpy as np
 import numpy.testing as npt
 import pandas as pd
 import pytest
