@@ -663,6 +663,23 @@ def _candidates(value, name, default):
     return values
 
 
+def check_grid_options(**options):
+    """
+    Refuse out-of-range ``[grid]`` options with an OptionError (exit 2).
+
+    Takes :func:`grid_stations`'s keyword options (missing ones at their
+    defaults): the checks it makes first, called by every run before
+    anything is written and by ``geosp check``.
+    """
+    import inspect
+
+    a = {name: p.default for name, p in inspect.signature(grid_stations).parameters.items()
+         if p.default is not inspect.Parameter.empty}
+    a.update(options)
+    _check_options(a["method"], a["cv"], _candidates(a["tension"], "tension", TENSIONS),
+                   _candidates(a["damping"], "damping", DAMPINGS))
+
+
 def _check_options(method, cv, tensions, dampings):
     if method not in _METHODS:
         raise OptionError("[grid]", f"method = {method!r} is not known.", f"Use one of {', '.join(_METHODS)}.")

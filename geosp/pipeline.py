@@ -304,7 +304,15 @@ def format_summary(summary):
 
 @dataclass
 class RunState:
-    """What the stages produced so far (kept in memory by `run`; cached between single-stage commands)."""
+    """
+    What the stages produced so far (kept in memory by `run`).
+
+    ``products`` holds, per stage, the fields that stage set (and its
+    warnings): the unit the cache between single-stage commands keeps
+    (geosp.io.state). The fit stage replaces ``reduction`` and ``grid`` with
+    the survey model's terrain correction; the reduce and grid products keep
+    the stage's own results, so a later re-run of detection starts from them.
+    """
 
     version: str = __version__
     project_text: str = ""
@@ -317,7 +325,30 @@ class RunState:
     selection: object = None  # the survey model after detection (geosp.interpret.Selection)
     noise: dict = field(default_factory=dict)  # the fitted noise model
     timings: dict = field(default_factory=dict)
-    warnings: list = field(default_factory=list)
+    products: dict = field(default_factory=dict)  # stage -> {field: value, "warnings": [text]}
+
+    @property
+    def warnings(self):
+        """Every warning: the inputs' first, then each stage's in order, each once."""
+        out = list(self.survey.warnings) if self.survey is not None else []
+        for stage in ORDER:
+            out.extend(w for w in self.products.get(stage, {}).get("warnings", ()) if w not in out)
+        return out
+
+    def record(self, stage, warned=(), **fields):
+        """Set ``fields`` as the products of ``stage`` (replacing earlier ones) and on the state."""
+        for name, value in fields.items():
+            setattr(self, name, value)
+        self.products[stage] = dict(fields, warnings=list(dict.fromkeys(warned)))
+
+    def restore(self, products):
+        """Take cached products ({stage: {field: value}}), in stage order."""
+        for stage in ORDER:
+            if stage in products:
+                self.products[stage] = dict(products[stage])
+                for name, value in products[stage].items():
+                    if name != "warnings":
+                        setattr(self, name, value)
 
 
 def _timed(state, name):
@@ -331,38 +362,40 @@ def _timed(state, name):
     return _Timer()
 
 
-def _capture(state):
-    class _Capture:
-        def __enter__(self):
-            self.cm = warnings.catch_warnings(record=True)
-            self.records = self.cm.__enter__()
-            warnings.simplefilter("always")
+class _Capture:
+    """Collect the warnings raised inside the block (as text, in order) in ``.texts``."""
 
-        def __exit__(self, *exc):
-            self.cm.__exit__(*exc)
-            for r in self.records:
-                text = str(r.message)
-                if text not in state.warnings:
-                    state.warnings.append(text)
+    def __enter__(self):
+        self.cm = warnings.catch_warnings(record=True)
+        self.records = self.cm.__enter__()
+        warnings.simplefilter("always")
+        self.texts = []
+        return self
 
-    return _Capture()
+    def __exit__(self, *exc):
+        self.cm.__exit__(*exc)
+        self.texts = [str(r.message) for r in self.records]
 
 
 def run_reduce(project, state):
     from .reduce import reduce_survey
 
-    with _timed(state, "reduce"), _capture(state):
-        state.reduction = reduce_survey(state.survey, **_pick(project.stages["reduce"], reduce_survey))
-    state.warnings.extend(w for w in state.reduction.warnings if w not in state.warnings)
+    with _timed(state, "reduce"), _Capture() as caught:
+        reduction = reduce_survey(state.survey, **_pick(project.stages["reduce"], reduce_survey))
+    state.record("reduce", caught.texts + list(reduction.warnings), reduction=reduction)
     return state
 
 
-def run_grid(project, state):
+def run_grid(project, state, *, stage="grid"):
     from .grid import grid_stations
 
-    with _timed(state, "grid"), _capture(state):
-        state.grid = grid_stations(state.reduction.stations, **_pick(project.stages["grid"], grid_stations))
-    return state
+    with _timed(state, "grid"), _Capture() as caught:
+        grid = grid_stations(state.reduction.stations, **_pick(project.stages["grid"], grid_stations))
+    if stage == "grid":
+        state.record("grid", caught.texts, grid=grid)
+    else:
+        state.grid = grid
+    return caught.texts
 
 
 def run_detect(project, state, *, workers=None, scheduler=None, progress=None):
@@ -376,14 +409,15 @@ def run_detect(project, state, *, workers=None, scheduler=None, progress=None):
     if scheduler is not None:
         options["scheduler"] = scheduler
     stations = state.reduction.stations
-    with _timed(state, "detect"), _capture(state):
+    with _timed(state, "detect"), _Capture() as caught:
         spacing = station_spacing(stations)
-        state.segments = make_segments(state.survey.faults, station_spacing_m=spacing,
-                                       **_pick(options, make_segments))
-        state.selection, state.detections = detect_sources(
-            stations, state.segments, network=state.reduction.network.get("station_covariance"),
+        segments = make_segments(state.survey.faults, station_spacing_m=spacing,
+                                 **_pick(options, make_segments))
+        selection, detections = detect_sources(
+            stations, segments, network=state.reduction.network.get("station_covariance"),
             estimate_terrain=_terrain_in_model(state.reduction), progress=progress,
             **_pick(options, detect_sources))
+    state.record("detect", caught.texts, segments=segments, selection=selection, detections=detections)
     return state
 
 
@@ -396,25 +430,42 @@ def _terrain_in_model(reduction):
 def run_fit(project, state, *, workers=None, scheduler=None, progress=None):
     from .interpret import fit_sources
 
-    with _timed(state, "fit"), _capture(state):
+    with _timed(state, "fit"), _Capture() as caught:
         result = fit_sources(state.selection, state.reduction.stations, state.detections,
                              network=state.reduction.network.get("station_covariance"))
-        state.fits = result.fits
-        state.noise = result.noise
-        if result.terrain is not None:
-            from dataclasses import replace
-
-            first = state.reduction.terrain or {}
-            terrain = dict(result.terrain, first_pass_slope_mv_per_m=first.get("slope_mv_per_m"))
-            state.reduction = replace(state.reduction, stations=result.stations, terrain=terrain)
+    fields = {"fits": result.fits, "noise": result.noise}
+    warned = caught.texts
     if result.terrain is not None:
-        run_grid(project, state)  # the grid shows the SP with the model's terrain correction
+        from dataclasses import replace
+
+        first = state.reduction.terrain or {}
+        terrain = dict(result.terrain, first_pass_slope_mv_per_m=first.get("slope_mv_per_m"))
+        state.reduction = replace(state.reduction, stations=result.stations, terrain=terrain)
+        warned = warned + run_grid(project, state, stage="fit")  # the grid shows the model's terrain correction
+        fields.update(reduction=state.reduction, grid=state.grid)
+    state.record("fit", warned, **fields)
     return state
 
 
+def check_options(project):
+    """Refuse out-of-range stage options (OptionError, exit 2) before any stage runs."""
+    from .grid import check_grid_options, grid_stations
+    from .interpret import check_detect_options, detect_sources
+    from .reduce import check_reduce_options, reduce_survey
+
+    check_reduce_options(**_pick(project.stages["reduce"], reduce_survey))
+    check_grid_options(**_pick(project.stages["grid"], grid_stations))
+    check_detect_options(**_pick(project.stages["detect"], detect_sources))
+    if "workers" in project.stages["detect"]:
+        from .parallel import resolve_workers
+
+        resolve_workers(project.stages["detect"]["workers"])
+
+
 def check(project):
-    """Load and validate every input; return the survey and its summary. Writes nothing."""
+    """Load and validate every input and option; return the survey and its summary. Writes nothing."""
     survey = load_survey(project)
+    check_options(project)
     return survey, summarize(survey)
 
 
@@ -422,7 +473,6 @@ def check(project):
 # Whole runs and outputs
 
 ORDER = ("reduce", "grid", "detect", "fit", "publish")
-_NEEDS = {"reduce": "survey", "grid": "reduction", "detect": "reduction", "fit": "detections"}
 
 
 def default_out(project):
@@ -440,7 +490,6 @@ def run_stages(project, state, stages, *, workers=None, scheduler=None, progress
     if state.survey is None:
         with _timed(state, "check"):
             state.survey = load_survey(project)
-        state.warnings.extend(w for w in state.survey.warnings if w not in state.warnings)
     first = min(ORDER.index(s) for s in stages)
     needed = [s for s in ORDER[:first] if s != "publish" and _missing(state, s)]
     for stage in needed + [s for s in ORDER if s in stages and s != "publish"]:
@@ -458,8 +507,7 @@ def run_stages(project, state, stages, *, workers=None, scheduler=None, progress
 
 
 def _missing(state, stage):
-    return {"reduce": state.reduction is None, "grid": state.grid is None,
-            "detect": not state.detections, "fit": state.fits is None}[stage]
+    return stage not in state.products
 
 
 def execute(project_path, stages, *, out=None, workers=None, scheduler=None, progress=None, say=None,
@@ -467,9 +515,10 @@ def execute(project_path, stages, *, out=None, workers=None, scheduler=None, pro
     """
     Run ``stages`` of a project and write their outputs to ``out``.
 
-    Earlier stages are taken from the output folder's cache when present
-    (so one stage can be re-run after editing the project file) and run
-    first otherwise. Stages after a re-run stage are cleared.
+    The inputs are always read again. Earlier stages are taken from the
+    output folder's cache when their inputs and options are unchanged (so one
+    stage can be re-run after editing the project file; geosp.io.state) and
+    run first otherwise. Stages from the first one asked for onwards run again.
 
     BLAS runs with at most ``threads`` threads for the whole run (default 1:
     geosp's solves are small, and parallel work comes from ``workers``);
@@ -482,43 +531,40 @@ def execute(project_path, stages, *, out=None, workers=None, scheduler=None, pro
     """
     from pathlib import Path
 
-    from .io.atomic import ensure_not_input, make_output_dir
-    from .io.state import read_state, write_state
+    from .io.atomic import ensure_not_input, output_set
+    from .io.state import CacheError, read_state, stage_keys, write_state
+    from .parallel import limit_blas
 
     say = say or (lambda *a: None)
     project = load_project(project_path)
     out = Path(out) if out is not None else default_out(project)
     ensure_not_input(out, project.input_paths())
-    state = None
-    if set(stages) != set(ORDER):
-        state = read_state(out, version=__version__)
-        if state is not None:
-            say(f"geosp: reusing earlier stages from {out}")
-    if state is None:
-        state = RunState()
-    state.project_text = project.text
-    first = min(ORDER.index(s) for s in stages)
-    for later in ORDER[first:]:
-        if later == "reduce":
-            state.reduction = None
-        elif later == "grid":
-            state.grid = None
-        elif later == "detect":
-            state.segments, state.detections = (), ()
-        elif later == "fit":
-            state.fits = None
-    if "reduce" in stages:
-        state.survey = None  # re-read the inputs
-        state.warnings = []
-    from .parallel import limit_blas
-
+    state = RunState(project_text=project.text)
     t0 = time.perf_counter()
-    with limit_blas(_check_threads(threads)):
+    with limit_blas(_check_threads(threads)), _timed(state, "check"):
+        state.survey = load_survey(project)  # a missing or changed input is seen before any cache
+        check_options(project)
+    # The folder is locked, and the cache read, only once the inputs are known to be good.
+    with output_set(out, say=say) as staging, limit_blas(threads):
+        keys = stage_keys(project, __version__, [s for s in ORDER if s != "publish"])
+        first = min(ORDER.index(s) for s in stages)
+        before = [s for s in ORDER[:first] if s != "publish"]
+        if before:
+            cached, note = read_state(out, version=__version__, keys=keys, stages=before)
+            state.restore(cached)
+            if cached:
+                say(f"geosp: reusing {', '.join(cached)} from {out}")
+            if note:
+                say(f"geosp: the cache in {out} was not used for every stage ({note}); running them again")
         run_stages(project, state, stages, workers=workers, scheduler=scheduler, progress=progress, say=say)
-        make_output_dir(out)
-        write_state(out, state)
-        write_outputs(project, state, out, publish="publish" in stages, say=say)
+        try:
+            write_state(out, version=__version__, keys=keys,
+                        products={s: state.products[s] for s in ORDER if s in state.products})
+        except (CacheError, OSError) as err:
+            say(f"geosp: the stage cache was not written ({err}); single-stage commands will start afresh")
+        written = write_outputs(project, state, staging, publish="publish" in stages)
     state.timings["total"] = round(time.perf_counter() - t0, 3)
+    say(f"geosp: wrote {', '.join(written)} in {out}")
     return out, state
 
 
@@ -528,14 +574,17 @@ def _check_threads(threads):
     return threads
 
 
-def write_outputs(project, state, out, *, publish=False, say=None):
-    """Write every output the state can fill; map and report only when ``publish``."""
+def write_outputs(project, state, out, *, publish=False):
+    """
+    Write every output the state can fill into the folder ``out``; map and report only when ``publish``.
+
+    run.json is written last and lists the SHA-256 of the others. Returns the names written.
+    """
     from . import interpretation, tables
     from .io.atomic import atomic_path
     from .io.layers import write_layers
     from .io.raster import write_geotiff
 
-    say = say or (lambda *a: None)
     crs = state.survey.crs
     reduced = state.reduction.stations
     model = residual = None
@@ -579,12 +628,12 @@ def write_outputs(project, state, out, *, publish=False, say=None):
                 tmp.write_text(html, encoding="utf-8")
             written.append("report.html")
     provenance = interpretation.provenance(project, state)
+    provenance["outputs"] = {name: interpretation.checksum(out / name) for name in written}
     with atomic_path(out / "run.json") as tmp:
         import json
 
         tmp.write_text(json.dumps(provenance, indent=2, default=str), encoding="utf-8")
     written.append("run.json")
-    say(f"geosp: wrote {', '.join(written)} in {out}")
     return written
 
 

@@ -211,14 +211,11 @@ def reduce_survey(
     * [Ghilani2010]_
     * [Telford1990]_
     """
-    _check_options(mode, reading_sigma_mv, station_sigma_mv, blunder_sigma, terrain,
-                   terrain_corridor_m, terrain_min_stations, outlier_window, outlier_mads,
-                   outlier_weight)
-    if terrain_slope_mv_per_m != "auto" and not isinstance(terrain_slope_mv_per_m, (int, float)):
-        from .errors import OptionError
-
-        raise OptionError("[reduce]", f"terrain_slope_mv_per_m = {terrain_slope_mv_per_m!r} must be "
-                          "\"auto\" or a number in mV/m.", "For example terrain_slope_mv_per_m = -0.5.")
+    check_reduce_options(mode=mode, reading_sigma_mv=reading_sigma_mv, station_sigma_mv=station_sigma_mv,
+                         blunder_sigma=blunder_sigma, terrain=terrain, terrain_corridor_m=terrain_corridor_m,
+                         terrain_min_stations=terrain_min_stations,
+                         terrain_slope_mv_per_m=terrain_slope_mv_per_m, outlier_window=outlier_window,
+                         outlier_mads=outlier_mads, outlier_weight=outlier_weight)
     notes = _Notes()
     readings = survey.readings
     gradient = readings is not None and len(readings.dv_mv) > 0
@@ -263,6 +260,31 @@ def reduce_survey(
 
 
 # --------------------------------------------------------------------------- options
+
+def check_reduce_options(**options):
+    """
+    Refuse out-of-range ``[reduce]`` options with an OptionError (exit 2).
+
+    Takes :func:`reduce_survey`'s keyword options (missing ones at their
+    defaults); called by :func:`reduce_survey`, by every run before anything
+    is written and by ``geosp check``.
+    """
+    import inspect
+
+    a = {name: p.default for name, p in inspect.signature(reduce_survey).parameters.items()
+         if p.default is not inspect.Parameter.empty}
+    a.update(options)
+    _check_options(a["mode"], a["reading_sigma_mv"], a["station_sigma_mv"], a["blunder_sigma"], a["terrain"],
+                   a["terrain_corridor_m"], a["terrain_min_stations"], a["outlier_window"], a["outlier_mads"],
+                   a["outlier_weight"])
+    slope = a["terrain_slope_mv_per_m"]
+    if slope != "auto" and not (isinstance(slope, (int, float)) and not isinstance(slope, bool)
+                                and np.isfinite(slope)):
+        from .errors import OptionError
+
+        raise OptionError("[reduce]", f"terrain_slope_mv_per_m = {slope!r} must be "
+                          "\"auto\" or a number in mV/m.", "For example terrain_slope_mv_per_m = -0.5.")
+
 
 def _check_options(mode, reading_sigma, station_sigma, blunder_sigma, terrain, corridor,
                    min_stations, window, mads, outlier_weight):

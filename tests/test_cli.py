@@ -45,6 +45,21 @@ def test_check_writes_nothing(tmp_path, capsys):
     assert sorted(p.name for p in project.parent.iterdir()) == before
 
 
+@pytest.mark.parametrize("section,option,fragment", [
+    ("reduce", 'mode = "sideways"', "mode"),
+    ("reduce", 'terrain_slope_mv_per_m = "steep"', "terrain_slope_mv_per_m"),
+    ("grid", 'method = "kriging-ish"', "method"),
+    ("detect", "n_null = 3", "n_null"),
+    ("detect", "workers = -1", "workers"),
+])
+def test_check_refuses_bad_stage_options(tmp_path, capsys, section, option, fragment):
+    """`geosp check` validates every stage's options, as a run does before it writes anything."""
+    project = write_survey(tmp_path / "s", "shp", extra_project=f"[{section}]\n{option}\n")
+    code, out, err = run(capsys, "check", project)
+    assert code == 2, (out, err)
+    assert err.count("geosp: error:") == 1 and fragment in err
+
+
 def test_version_and_help(capsys):
     with pytest.raises(SystemExit) as exit_:
         main(["--version"])

@@ -27,6 +27,17 @@ to numpy.
 """
 
 import math
+import os
+import sys
+
+if "numba" not in sys.modules and "NUMBA_CACHE_DIR" not in os.environ:
+    # Compiled kernels are cached in the user's cache folder, never in the installed package.
+    try:
+        from .._userdirs import user_cache_dir
+
+        os.environ["NUMBA_CACHE_DIR"] = str(user_cache_dir() / "numba")
+    except (ImportError, OSError):  # no writable cache folder: numba then caches nowhere it cannot
+        pass
 
 try:
     from numba import njit
