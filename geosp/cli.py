@@ -166,6 +166,30 @@ def _dispatch(args, say, progress):
     return 0
 
 
+def os_problem(err):
+    """One line for an operating-system error: the file, what is wrong, what to do."""
+    import errno
+
+    where = f"{err.filename}: " if err.filename else ""
+    if isinstance(err, PermissionError):
+        what, fix = "permission denied.", ("Make the file readable (an input) or the folder writable (--out) "
+                                           "for your user, or choose another path.")
+    elif err.errno in (errno.ENOSPC, getattr(errno, "EDQUOT", -1)):
+        what, fix = "the disk is full (or your quota is used up).", (
+            "Free some space or give --out a folder on another disk; the earlier outputs are unchanged.")
+    elif err.errno == errno.ELOOP:
+        what, fix = "too many levels of symbolic links (a link loop).", "Point the path at the real file."
+    elif err.errno == errno.EROFS:
+        what, fix = "the file system is read-only.", "Give --out a folder you can write to."
+    elif isinstance(err, IsADirectoryError):
+        what, fix = "is a folder, not a file.", "Name the file itself."
+    elif isinstance(err, FileNotFoundError):
+        what, fix = "does not exist.", "Check the path."
+    else:
+        what, fix = f"{err.strerror or err}.", "Check the path and the disk."
+    return f"{where}{what} {fix}"
+
+
 def main(argv=None):
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -194,6 +218,11 @@ def main(argv=None):
             raise
         print(f"geosp: failed: {err}", file=sys.stderr)
         return 1
+    except OSError as err:  # the machine, not geosp: permissions, a full disk, a link loop
+        if args.debug:
+            raise
+        print(f"geosp: error: {os_problem(err)}", file=sys.stderr)
+        return 2
     except Exception as err:  # a bug
         if args.debug:
             raise

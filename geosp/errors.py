@@ -1,8 +1,34 @@
 """Exception classes. Everything geosp raises on purpose derives from GeospError."""
 
 
+import re
+
+_LONG_NUMBER = re.compile(r"\d{40,}")
+
+
+def _shorten_numbers(text):
+    """A number of 40 digits or more is shown by its first digits and its length."""
+    return _LONG_NUMBER.sub(lambda m: f"{m.group()[:12]}…({len(m.group())} digits)", text)
+
+
+def _rebuild(cls, args, state):
+    error = cls.__new__(cls)
+    Exception.__init__(error, *args)
+    error.__dict__.update(state)
+    return error
+
+
 class GeospError(Exception):
-    """Base class for every error geosp raises on purpose."""
+    """
+    Base class for every error geosp raises on purpose.
+
+    Errors survive pickling (a worker process or a Dask worker sends them back
+    whole): they are rebuilt from their message and attributes, not by calling
+    ``__init__`` again with arguments it does not take.
+    """
+
+    def __reduce__(self):
+        return _rebuild, (type(self), self.args, dict(self.__dict__))
 
 
 class InputError(GeospError, ValueError):
@@ -16,7 +42,7 @@ class InputError(GeospError, ValueError):
     def __init__(self, path, problem, fix="", *, where=None):
         self.path, self.where, self.problem, self.fix = path, where, problem, fix
         location = str(path) if where is None else f"{path}, {where}"
-        text = f"{location}: {problem}"
+        text = f"{location}: {_shorten_numbers(str(problem))}"
         if fix:
             text = f"{text} {fix}"
         super().__init__(text)

@@ -257,3 +257,49 @@ def test_section_command_refuses_a_bad_model(tmp_path, capsys):
     bad.write_text('[mesh]\nx_m = [0, 100]\ndepth_m = 50\ncell_m = 5\n[background]\nsigma_sm = 0.01\n')
     code, _, err = run(capsys, "section", bad, "--out", tmp_path / "o")
     assert code == 2 and "m.toml" in err and "Traceback" not in err
+
+
+def test_permission_denied_is_exit_2_naming_the_file(tmp_path, capsys, monkeypatch):
+    """Running as root ignores file modes, so the reader is made to raise what a locked file raises."""
+    import geosp.pipeline
+
+    project = write_survey(tmp_path / "s", "shp")
+
+    def refuse(_project):
+        raise PermissionError(13, "Permission denied", str(tmp_path / "s" / "stations.shp"))
+
+    monkeypatch.setattr(geosp.pipeline, "load_survey", refuse)
+    code, out, err = run(capsys, "check", project)
+    assert code == 2
+    assert "stations.shp: permission denied" in err and "internal error" not in err
+
+
+def test_disk_full_is_exit_2_and_keeps_the_earlier_outputs(tmp_path, capsys, monkeypatch):
+    import errno
+
+    import geosp.pipeline
+    from tests.test_robustness import FAST
+
+    project = write_survey(tmp_path / "s", "shp", extra_project=FAST)
+    out = tmp_path / "out"
+    assert run(capsys, "run", project, "--out", out, "--quiet")[0] == 0
+    before = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
+
+    def full(*_args, **_kw):
+        raise OSError(errno.ENOSPC, "No space left on device", str(out / ".geosp" / "staging" / "map.html"))
+
+    monkeypatch.setattr(geosp.pipeline, "write_outputs", full)
+    code, _, err = run(capsys, "run", project, "--out", out, "--quiet")
+    assert code == 2
+    assert "the disk is full" in err
+    assert {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()} == before
+
+
+def test_symlink_loop_is_exit_2(tmp_path, capsys):
+    project = write_survey(tmp_path / "s", "shp")
+    loop = tmp_path / "s" / "loop.shp"
+    loop.symlink_to(loop)
+    project.write_text(project.read_text().replace('path = "stations.shp"', 'path = "loop.shp"'))
+    code, out, err = run(capsys, "check", project)
+    assert code == 2, err
+    assert "loop.shp" in err and "internal error" not in err

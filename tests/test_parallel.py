@@ -56,6 +56,17 @@ def test_process_pool_keeps_order_and_item_seed_is_stable():
     assert calls == list(range(len(keys) + 1))
 
 
+def _refuse(item):
+    raise OptionError("[detect]", f"item {item} is out of range.", "Fix it.", where="[detect] n_starts")
+
+
+def test_error_raised_in_a_worker_reaches_the_caller_whole():
+    """An input error raised inside a worker process arrives as itself (exit 2), not as a broken pool."""
+    with pytest.raises(OptionError, match="item 1 is out of range") as caught:
+        map_segments(_refuse, [1, 2], workers=2)
+    assert caught.value.where == "[detect] n_starts"
+
+
 def test_resolve_workers():
     assert resolve_workers(1) == 1
     assert resolve_workers(3) == 3

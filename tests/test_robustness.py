@@ -654,6 +654,69 @@ def test_grid_with_a_far_station_fails_cleanly():
         resource.setrlimit(resource.RLIMIT_AS, (soft, hard))
 
 
+def c_fault_ids_repeated(tmp):
+    p = project_with(tmp)
+    gpd.GeoDataFrame({"FAULT": ["F-A", "F-A"], "dip": [80.0, 80.0], "dip_dir": [90.0, 90.0]},
+                     geometry=[LineString([(500400, 4499800), (500420, 4501300)]),
+                               LineString([(500700, 4499800), (500720, 4501300)])], crs=UTM).to_file(
+        p.parent / "faults.gpkg", layer="faults")
+    return Case(p, ("faults.gpkg", "fault id 'F-A'", "features 1, 2"))
+
+
+def c_sp_value_absurd(tmp):
+    frame, fault = small_survey()
+    frame.loc[7, "SP_mV"] = 1e300
+    return Case(project_with(tmp, "gpkg", frame=frame, fault=fault),
+                ("stations.gpkg", "SP_mV", "outside", "feature 8 (L01-007)"))
+
+
+def c_elevation_in_millimetres(tmp):
+    frame, fault = small_survey()
+    frame.loc[3, "ELEV"] = 1_000_000.0
+    return Case(project_with(tmp, frame=frame, fault=fault), ("stations.shp", "ELEV", "feature 4 (L01-003)"))
+
+
+def c_reading_absurd(tmp):
+    def mutate(t):
+        t.loc[4, "DV"] = -3e12
+        return t
+    return Case(readings_survey(tmp, mutate=mutate), ("dv.csv", "DV", "line 6"))
+
+
+def c_readings_mixed_time_zones(tmp):
+    def mutate(t):
+        t.loc[:5, "TIME"] = t.loc[:5, "TIME"] + "+02:00"
+        return t
+    return Case(readings_survey(tmp, mutate=mutate), ("dv.csv", "mixes times with a time zone", "line 2",
+                                                      "line 8"))
+
+
+def c_faults_geojson_projected_without_crs(tmp):
+    import json
+
+    p = project_with(tmp)
+    (p.parent / "faults.geojson").write_text(json.dumps({"type": "FeatureCollection", "features": [
+        {"type": "Feature", "properties": {"FAULT": "F-A", "dip": 80, "dip_dir": 90},
+         "geometry": {"type": "LineString", "coordinates": [[500400, 4499800], [500420, 4501300]]}}]}))
+    edit(p, 'path = "faults.gpkg"', 'path = "faults.geojson"')
+    return Case(p, ("faults.geojson", "cannot be degrees", "RFC 7946"))
+
+
+def c_project_path_with_nul(tmp):
+    p = project_with(tmp)
+    edit(p, 'path = "faults.gpkg"', 'path = "faults\\u0000.gpkg"')
+    return Case(p, ("[faults] path", "NUL"))
+
+
+def c_detect_starts_absurd(tmp):
+    return Case(project_with(tmp, extra=FAST.replace("n_starts = 8", "n_starts = 1e20")), ("n_starts",))
+
+
+def c_detect_number_of_600_digits(tmp):
+    return Case(project_with(tmp, extra=FAST.replace("n_starts = 8", "n_starts = " + "9" * 600)),
+                ("n_starts", "(600 digits)"))
+
+
 # Work-arounds: these must succeed (``geosp check``), with the fragment in the summary.
 
 def ok_bom_csv(tmp):
@@ -707,6 +770,19 @@ def ok_line_with_one_station(tmp):
     frame = pd.concat([frame, pd.DataFrame([{"STN": "X-1", "LINE": "X", "E": 500300.0, "N": 4500333.0,
                                             "SP_mV": 5.0, "ELEV": 1000.0}])], ignore_index=True)
     return Case(project_with(tmp, frame=frame, fault=fault), ("206 on 6 lines",), ok=True, command="check")
+
+
+def ok_project_file_with_byte_order_mark(tmp):
+    p = project_with(tmp)
+    p.write_bytes(b"\xef\xbb\xbf" + p.read_bytes())
+    return Case(p, ("205 on 5 lines",), ok=True, command="check")
+
+
+def ok_readings_all_with_offsets(tmp):
+    def mutate(t):
+        t["TIME"] = t["TIME"] + "+02:00"
+        return t
+    return Case(readings_survey(tmp, mutate=mutate), ("gradient readings",), ok=True, command="check")
 
 
 CASES = [v for k, v in sorted(globals().items()) if k.startswith("c_")]

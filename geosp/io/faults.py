@@ -43,6 +43,17 @@ def read_faults(config, *, crs):
     ids = (gdf[config["id"]].astype(str).str.strip().to_numpy() if config.get("id")
            else np.array([f"F{i + 1}" for i in range(len(gdf))]))
     feature = [f"feature {i + 1} ({ident})" for i, ident in enumerate(ids)]
+    if config.get("id"):
+        seen = {}
+        for i, ident in enumerate(ids):
+            seen.setdefault(ident, []).append(i + 1)
+        for ident, rows in seen.items():
+            if len(rows) > 1:
+                problems.append(InputError(
+                    path, f"fault id '{ident}' in column '{config['id']}' is used by features "
+                    f"{format_rows(rows)}.",
+                    "Give each fault its own id (several pieces of one fault: one MultiLineString), "
+                    "or leave [faults] id out to number them."))
 
     def numbers(key, low, high, what):
         if not config.get(key):

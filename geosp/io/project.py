@@ -153,7 +153,7 @@ def read_project(path, *, stage_defaults=None):
                           "Check the path, or write a template with 'geosp init PROJECT.toml'.")
     if path.is_dir():
         raise OptionError(path, "is a folder, not a project file.", "Pass the .toml file inside it.")
-    text = path.read_text(encoding="utf-8", errors="replace")
+    text = path.read_text(encoding="utf-8-sig", errors="replace")  # a byte-order mark is not part of the text
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
@@ -188,6 +188,11 @@ def read_project(path, *, stage_defaults=None):
             elif section == "stations" and key == "value_scale" and not (math.isfinite(value) and value != 0):
                 problems.append(OptionError(path, f"[stations] value_scale = {value!r} must be a non-zero number.",
                                             "Use 1 for millivolts (the default) or 1000 for volts."))
+    for section, key in sorted(PATH_KEYS):
+        value = data.get(section, {}).get(key) if isinstance(data.get(section), dict) else None
+        if isinstance(value, str) and "\x00" in value:
+            problems.append(OptionError(path, f"[{section}] {key} contains a NUL character (\\u0000).",
+                                        "Write the file name without it."))
     for section in ("stations", "faults"):
         if section not in data:
             problems.append(OptionError(path, f"the [{section}] section is missing.",
@@ -207,7 +212,11 @@ def read_project(path, *, stage_defaults=None):
         merged = {**INPUT_SECTIONS[section], **data[section]}
         for sec, key in PATH_KEYS:
             if sec == section and merged.get(key):
-                merged[key] = str((path.parent / merged[key]).resolve())
+                try:
+                    merged[key] = str((path.parent / merged[key]).resolve())
+                except (RuntimeError, OSError):  # a symbolic link that leads back to itself
+                    raise OptionError(path.parent / merged[key], "is a symbolic link that leads back to itself "
+                                      "(a link loop).", f"Point [{section}] {key} at the real file.") from None
         return merged
 
     stages = {}

@@ -9,7 +9,7 @@ import pandas as pd
 
 from ..errors import InputError, InputErrors, format_rows
 from ..models import ElectrodeChecks, Readings
-from .stations import _missing_columns, read_csv_text
+from .stations import MAX_ABS_SP_MV, _missing_columns, parse_times, read_csv_text, refuse_outside
 
 
 def _read_csv(path, what):
@@ -26,9 +26,7 @@ def _read_csv(path, what):
 
 def _times(frame, column, path, problems):
     raw = frame[column]
-    times = pd.to_datetime(raw, errors="coerce", format="ISO8601")
-    if getattr(times.dt, "tz", None) is not None:
-        times = times.dt.tz_convert("UTC").dt.tz_localize(None)
+    times = parse_times(raw, path, column, lambda mask: [f"line {i + 2}" for i in np.flatnonzero(mask)], problems)
     bad = times.isna()
     if bad.any():
         rows = [f"line {i + 2}" for i in np.flatnonzero(bad.to_numpy())]
@@ -66,6 +64,9 @@ def read_readings(config):
     problems = []
     time = _times(frame, config["time"], path, problems)
     dv = _values(frame, config["value_mv"], path, problems)
+    refuse_outside(dv, -MAX_ABS_SP_MV, MAX_ABS_SP_MV, path, config["value_mv"],
+                   lambda mask: [f"line {i + 2}" for i in np.flatnonzero(mask)], problems,
+                   "That is no potential difference between two electrodes (mV): check the units and the row.")
     ids = {k: frame[config[k]].fillna("").astype(str).str.strip().to_numpy().astype(object) for k in ("line", "from", "to")}
     for key in ("from", "to"):
         blank = ids[key] == ""

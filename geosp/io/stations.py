@@ -49,6 +49,42 @@ def _row_labels(frame, mask, id_column="station_id"):
     return labels
 
 
+_ZONED = r"(?:[Zz]|[+-]\d\d(?::?\d\d)?)\s*$"
+
+
+def parse_times(raw, path, column, labels, problems):
+    """
+    Parse ISO 8601 times into naive timestamps (offsets applied when given).
+
+    All values with a time-zone offset (``Z``, ``+02:00``; offsets may differ)
+    are converted to UTC; all values without one are kept as written. A
+    column mixing the two is refused (the order of the readings would depend
+    on a guess). Unparseable values are NaT; the caller reports them.
+
+    Parameters
+    ----------
+    raw : pandas.Series
+    path, column : for the message
+    labels : callable
+        Boolean mask -> list of row labels for the message.
+    problems : list
+        An InputError is appended for a mixture.
+    """
+    text = raw.astype("string").str.strip()
+    zoned = text.str.contains(_ZONED, regex=True, na=False).to_numpy()
+    present = text.notna().to_numpy() & (text.fillna("") != "").to_numpy()
+    if zoned.any() and (present & ~zoned).any():
+        problems.append(InputError(
+            path, f"column '{column}' mixes times with a time zone ({format_rows(labels(zoned), cap=2)}) and "
+            f"without one ({format_rows(labels(present & ~zoned), cap=2)}).",
+            "Write every time the same way: all with an offset (2026-03-14T09:30:00+02:00) or all without."))
+    times = pd.to_datetime(text.where(pd.Series(present, index=text.index)), errors="coerce", format="ISO8601",
+                           utc=bool(zoned.any()))
+    if getattr(times.dt, "tz", None) is not None:
+        times = times.dt.tz_convert("UTC").dt.tz_localize(None)
+    return times
+
+
 def _numeric(frame, column, path, label, problems, *, allow_blank=False):
     raw = frame[column]
     values = pd.to_numeric(raw, errors="coerce").astype(float)
@@ -68,6 +104,20 @@ def _numeric(frame, column, path, label, problems, *, allow_blank=False):
             path, f"column '{label}' is infinite at {format_rows(_row_labels(frame, infinite))}.",
             "Replace it with a measured value or delete the row."))
     return values
+
+
+#: Magnitudes no SP survey produces: beyond them a value is a unit or typing error (mV; m).
+MAX_ABS_SP_MV = 1e5
+ELEVATION_RANGE_M = (-1000.0, 9000.0)
+
+
+def refuse_outside(values, low, high, path, label, labels, problems, fix):
+    """Add an InputError naming the rows whose finite value lies outside [low, high]."""
+    values = np.asarray(values, dtype=float)
+    bad = np.isfinite(values) & ((values < low) | (values > high))
+    if bad.any():
+        problems.append(InputError(path, f"column '{label}' holds values outside {low:g} to {high:g} at "
+                                   f"{format_rows(labels(bad))}.", fix))
 
 
 def read_stations(config, *, crs=None):
@@ -131,12 +181,18 @@ def read_stations(config, *, crs=None):
     if config.get("value_mv"):
         values = _numeric(frame, config["value_mv"], path, config["value_mv"], problems)
         canonical["sp_mv"] = values.to_numpy() * float(config.get("value_scale", 1.0) or 1.0)
+        refuse_outside(canonical["sp_mv"], -MAX_ABS_SP_MV, MAX_ABS_SP_MV, path, config["value_mv"],
+                       lambda mask: _row_labels(canonical, mask), problems,
+                       "That is no SP reading (in mV after value_scale): check the units and the row.")
     else:
         canonical["sp_mv"] = np.nan
     canonical["line_id"] = frame[config["line"]].astype(str).str.strip().to_numpy() if config.get("line") else ""
     if config.get("elevation"):
         canonical["elev_m"] = _numeric(frame, config["elevation"], path, config["elevation"], problems,
                                        allow_blank=True).to_numpy()
+        refuse_outside(canonical["elev_m"], *ELEVATION_RANGE_M, path, config["elevation"],
+                       lambda mask: _row_labels(canonical, mask), problems,
+                       "Elevations are in metres above sea level: check the units and the row.")
     else:
         canonical["elev_m"] = np.nan
     if config.get("sigma_mv"):
@@ -145,13 +201,14 @@ def read_stations(config, *, crs=None):
     else:
         canonical["sigma_mv"] = np.nan
     if config.get("time"):
-        times = pd.to_datetime(frame[config["time"]], errors="coerce", format="ISO8601")
+        times = parse_times(frame[config["time"]], path, config["time"],
+                            lambda mask: _row_labels(canonical, mask), problems)
         bad = times.isna() & frame[config["time"]].notna()
         if bad.any():
             problems.append(InputError(path, f"column '{config['time']}' is not an ISO 8601 time at "
                                        f"{format_rows(_row_labels(canonical, bad.to_numpy()))}.",
                                        "Write times like 2026-03-14T09:30:00."))
-        canonical["time"] = times.dt.tz_localize(None) if getattr(times.dt, "tz", None) is not None else times
+        canonical["time"] = times
     else:
         canonical["time"] = pd.NaT
     if problems:

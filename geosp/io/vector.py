@@ -63,7 +63,21 @@ def read_vector(path, *, layer="", what="file"):
                          "Check that the file is complete and not corrupted; re-export it from your GIS.") from None
     if len(frame) == 0:
         raise InputError(path, f"layer '{layer}' is empty.", "Export a layer that has features.")
+    _check_degrees(frame, path, layer)
     return frame, layer
+
+
+def _check_degrees(frame, path, layer):
+    """A layer in geographic coordinates whose numbers cannot be degrees (a projected file without its CRS)."""
+    if frame.crs is None or not frame.crs.is_geographic:
+        return
+    bounds = frame.geometry.dropna().total_bounds
+    if len(bounds) == 4 and (abs(bounds[[0, 2]]).max() > 360.0 or abs(bounds[[1, 3]]).max() > 90.0):
+        raise InputError(path, f"layer '{layer}' is in longitude and latitude ({frame.crs.name}), but its "
+                         f"coordinates reach {bounds[2]:.0f}, {bounds[3]:.0f}, which cannot be degrees.",
+                         "The coordinates are projected (metres). GeoJSON is always longitude/latitude "
+                         "(RFC 7946): export the layer as a GeoPackage or a Shapefile with its CRS, or "
+                         "reproject it to longitude/latitude.")
 
 
 def _check_shapefile_length(path):
