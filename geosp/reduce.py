@@ -632,6 +632,12 @@ def _reduce_gradient(stations, readings, checks, reference, notes, *, drift, mod
     })
     suspect = (np.abs(legs["std_residual_final"].to_numpy()) > blunder_sigma) & (legs["flag"] == "")
     legs.loc[suspect, "flag"] = "suspect: standardized residual above blunder_sigma"
+    unchecked = legs[legs["flag"].str.startswith("unchecked")]
+    if len(unchecked):
+        text = [f"line {r.source_row} ({r.line_id}: {r.from_id} -> {r.to_id})" for r in unchecked.itertuples()]
+        notes.add(f"{path}: {len(unchecked)} readings that no loop checks (line ends beyond the last tie) stand "
+                  f"out from their neighbours: {format_rows(text)}. The stations beyond them carry that "
+                  "uncertainty; re-read these legs or tie the line ends to check them.")
     blunders = legs[legs["flag"].str.startswith("blunder")].copy()
     if len(blunders):
         text = [f"line {r.source_row} ({r.line_id}: {r.from_id} -> {r.to_id} at {r.time}, "
@@ -693,8 +699,42 @@ def _adjust_with_snooping(n, f, t, obs, variance, ref, line, blunder_sigma, wind
         res = adjust_network(n, f, t, obs, var, ref)
     res, n_local = _snoop_single_readings(n, f, t, obs, var, ref, line, res, first, flag,
                                           blunder_sigma, window, _MAX_SNOOP - n_down)
+    if _unchecked_readings(first, obs, var, line, window, flag):
+        res = adjust_network(n, f, t, obs, var, ref)
     return {"first": first, "final": res, "leg_flag": flag, "n_down": n_down + n_local,
             "threshold": threshold}
+
+
+def _line_scale(anomaly, line):
+    """Robust standard deviation of the gradient anomalies of each reading's line (1.4826 × median)."""
+    scale = np.zeros(len(anomaly))
+    for idx in pd.Series(np.arange(len(anomaly))).groupby(np.asarray(line)).indices.values():
+        scale[idx] = 1.4826 * np.median(anomaly[idx])
+    return scale
+
+
+def _unchecked_readings(first, obs, var, line, window, flag):
+    """
+    Readings no loop can check that stand out from their neighbours: their doubt becomes variance.
+
+    A reading outside every loop (no redundancy: a line end beyond its last
+    tie) cannot be tested by loop closure, yet a blunder there shifts every
+    station beyond it. When it stands out from its neighbours along the line
+    by more than ``_READING_OUTLIER_Z`` robust standard deviations, its
+    variance grows by the square of that departure, so the stations beyond
+    carry the doubt in their ``sigma_mv`` and in the network covariance the
+    fits use; the leg is flagged "unchecked". ``var`` and ``flag`` are
+    updated in place; returns how many readings were so treated.
+    """
+    anomaly = _gradient_anomaly(obs, line, window)
+    scale = _line_scale(anomaly, line)
+    pick = np.flatnonzero(~np.isfinite(first["std_residual"]) & (flag == "")
+                          & (anomaly > _READING_OUTLIER_Z * np.maximum(scale, 1e-9)))
+    for i in pick:
+        var[i] += anomaly[i] ** 2
+        flag[i] = (f"unchecked: {anomaly[i]:.1f} mV off its neighbours where no loop checks it; "
+                   "the stations beyond carry that uncertainty")
+    return len(pick)
 
 
 def _snoop_single_readings(n, f, t, obs, var, ref, line, res, first, flag, blunder_sigma, window,
@@ -712,9 +752,7 @@ def _snoop_single_readings(n, f, t, obs, var, ref, line, res, first, flag, blund
     returns the final adjustment and the number of legs down-weighted.
     """
     anomaly = _gradient_anomaly(obs, line, window)
-    scale = np.zeros(len(obs))
-    for idx in pd.Series(np.arange(len(obs))).groupby(np.asarray(line)).indices.values():
-        scale[idx] = 1.4826 * np.median(anomaly[idx])
+    scale = _line_scale(anomaly, line)
     tried, n_down = set(), 0
     while n_down < budget:
         w = np.abs(res["std_residual"])

@@ -245,6 +245,29 @@ def test_blunder_below_the_network_threshold_is_found_by_its_reading():
     assert np.sqrt(np.mean((err - err.mean()) ** 2)) <= 1.2 * dense_centred_rms(survey, 1.0)
 
 
+def test_blunder_no_loop_can_check_becomes_uncertainty_of_the_stations_beyond():
+    # Tie lines at columns 0, 8 and 16 only: readings 16-23 of row 0 (S00-016 -> S00-024) are a
+    # line end that no loop checks. A 30 mV blunder on reading 20 (CSV row 22) cannot be found
+    # by loop closure and shifts S00-021..024 by 30 mV. It stands out from its neighbours
+    # along the line, so its departure becomes variance: the stations beyond carry about
+    # 30 mV of uncertainty, the ones before it do not. (Common practice: an unchecked line end
+    # is only as good as its worst reading.)
+    survey, _ = grid_survey(noise=1.0, seed=3, tie_cols=(0, 8, 16), blunder=(20, 30.0))
+    red = reduce_quiet(survey, reading_sigma_mv=1.0)
+    legs = red.qc["legs"]
+    unchecked = legs[legs["flag"].str.startswith("unchecked")]
+    assert list(unchecked["source_row"]) == [22]
+    sigma = dict(zip(red.stations.station_id, red.stations.sigma_mv))
+    station_sigma = 5.0  # reduce_survey's default station_sigma_mv, added in quadrature
+    beyond = [np.sqrt(sigma[f"S00-{c:03d}"] ** 2 - station_sigma**2) for c in range(21, 25)]
+    before = [np.sqrt(sigma[f"S00-{c:03d}"] ** 2 - station_sigma**2) for c in range(16, 21)]
+    assert min(beyond) > 25.0 and max(before) < 5.0
+    # The same survey without the blunder: nothing stands out, nothing is inflated.
+    clean, _ = grid_survey(noise=1.0, seed=3, tie_cols=(0, 8, 16))
+    red = reduce_quiet(clean, reading_sigma_mv=1.0)
+    assert not red.qc["legs"]["flag"].str.startswith("unchecked").any()
+
+
 def test_misclosure_spread_over_a_chain_is_only_suspect():
     # The same 16 mV, spread as 2 mV on each of the 8 readings of that chain (rows 26-33):
     # the chain misclosure is the same, but no single reading stands out, so nothing is
