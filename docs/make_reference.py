@@ -298,8 +298,7 @@ def render_project_file():
             out.append(f"| `{key}` | {shown} | {_cell(INPUT_HELP[section][key])} |")
         out.append("")
     for section, rows in stage_options().items():
-        owners = ", ".join(f"`{spec.replace(':', '.')}`" for spec in STAGE_FUNCTIONS[section])
-        out += [f"## [{section}]", "", SECTION_INTRO[section] + f" Keys are the options of {owners}.", "",
+        out += [f"## [{section}]", "", SECTION_INTRO[section], "",
                 "| key | default | type | meaning |", "|---|---|---|---|"]
         for key, default, kind, description, _ in rows:
             kind = re.sub(r",?\s*optional$", "", kind)

@@ -27,6 +27,9 @@ exit codes: 0 success, 2 bad input or options, 1 internal error (a bug)
 STAGES = ("reduce", "grid", "detect", "fit", "publish")
 
 
+_WORKERS_HELP = "processes for the survey model's blocks (default: [detect] workers, 1); results do not depend on it"
+
+
 def build_parser():
     parser = argparse.ArgumentParser(
         prog="geosp", description="Self-potential survey reduction and fault-source interpretation.",
@@ -35,18 +38,28 @@ def build_parser():
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--quiet", "-q", action="store_true", help="no progress bars or summaries")
     common.add_argument("--debug", action="store_true", help="show tracebacks")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    class _Commands:
+        """Every command's --help opens with the sentence the command list shows."""
+
+        @staticmethod
+        def add_parser(name, *, help, **kwargs):
+            return commands.add_parser(name, help=help, description=help[0].upper() + help[1:] + ".",
+                                       **kwargs)
+
+    sub = _Commands()
 
     p = sub.add_parser("demo", parents=[common], help="run the whole pipeline on the bundled demo area")
     p.add_argument("--out", default="geosp_demo", help="output folder (default: ./geosp_demo)")
-    p.add_argument("--workers", type=_workers, default=None, help="processes for the source fits (default: [detect] workers, 1)")
+    p.add_argument("--workers", type=_workers, default=None, help=_WORKERS_HELP)
     _threads_arg(p)
 
     p = sub.add_parser("run", parents=[common], help="run every stage and write every output")
     _project_args(p)
-    p.add_argument("--workers", type=_workers, default=None, help="processes for the source fits (default: [detect] workers, 1)")
+    p.add_argument("--workers", type=_workers, default=None, help=_WORKERS_HELP)
     p.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
-                   help="run the source fits on this Dask distributed scheduler")
+                   help="run the survey model's blocks on this Dask distributed scheduler")
     _threads_arg(p)
 
     p = sub.add_parser("check", parents=[common], help="load and validate inputs; print a summary; write nothing")
@@ -58,14 +71,15 @@ def build_parser():
         _project_args(p)
         if stage == "detect":
             p.add_argument("--workers", type=_workers, default=None,
-                           help="processes for the source fits (default: [detect] workers, 1)")
+                           help=_WORKERS_HELP)
             p.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
-                           help="run the source fits on this Dask distributed scheduler")
+                           help="run the survey model's blocks on this Dask distributed scheduler")
         _threads_arg(p)
 
     p = sub.add_parser("forward", parents=[common],
                        help="predicted SP of given sources at given stations (survey design)")
-    p.add_argument("sources", type=Path, help="GeoPackage with a 'sources' layer (contract schema)")
+    p.add_argument("sources", type=Path, help="GeoPackage with a 'sources' layer as geosp writes it "
+                   "(docs/outputs.md)")
     p.add_argument("stations", type=Path, help="stations: .gpkg/.shp/.geojson points, or CSV with x,y (same CRS "
                    "as the sources) or lon,lat")
     p.add_argument("--out", type=Path, default=None, help="output .gpkg or .csv (default: print a table)")
@@ -79,7 +93,8 @@ def build_parser():
     p.add_argument("--out", type=Path, default=Path("section_out"), help="output folder (default: ./section_out)")
 
     p = sub.add_parser("init", parents=[common], help="write a commented project-file template")
-    p.add_argument("project", type=Path, nargs="?", default=Path("project.toml"))
+    p.add_argument("project", type=Path, nargs="?", default=Path("project.toml"),
+                   help="project file to write (default: project.toml; an existing file is never overwritten)")
     return parser
 
 

@@ -123,8 +123,40 @@ def checksum(path):
     return digest.hexdigest()
 
 
+def shareable(project):
+    """
+    A function that writes the project's file paths in a text relative to the
+    project folder, so that a report or run.json that is passed on does not
+    show the folders of the machine it was made on.
+    """
+    import os
+
+    base = project.base_dir
+    pairs = []
+    for path in project.input_paths():
+        path = Path(path)
+        for p in [path] + [path.with_suffix(s) for s in (".shx", ".dbf", ".prj", ".cpg")]:
+            try:
+                pairs.append((str(p), os.path.relpath(p, base)))
+            except ValueError:  # another drive (Windows): the name alone
+                pairs.append((str(p), p.name))
+    pairs.sort(key=lambda pair: -len(pair[0]))  # longest first, so no path is cut inside another
+    folder = str(base) + os.sep
+
+    def relative(text):
+        text = str(text)
+        for absolute, rel in pairs:
+            text = text.replace(absolute, rel)
+        return text.replace(folder, "")
+
+    return relative
+
+
 def provenance(project, state):
     """The run.json content: version, project file, input checksums, timings, warnings."""
+    import os
+
+    share = shareable(project)
     inputs = {}
     for path in project.input_paths():
         path = Path(path)
@@ -133,8 +165,11 @@ def provenance(project, state):
             group += [path.with_suffix(s) for s in (".shx", ".dbf", ".prj", ".cpg")]
         for p in group:
             if p.exists():
-                inputs[p.name if p.parent == project.base_dir else str(p)] = {"sha256": checksum(p),
-                                                                               "bytes": p.stat().st_size}
+                try:
+                    key = os.path.relpath(p, project.base_dir)
+                except ValueError:  # another drive (Windows)
+                    key = p.name
+                inputs[key] = {"sha256": checksum(p), "bytes": p.stat().st_size}
     import numpy
     import scipy
 
@@ -147,7 +182,7 @@ def provenance(project, state):
         "working_crs": state.survey.crs if state.survey else None,
         "crs_note": state.survey.crs_note if state.survey else None,
         "timings_s": state.timings,
-        "warnings": state.warnings,
+        "warnings": [share(w) for w in state.warnings],
         "terrain": terrain_result(state),
         "environment": {"python": platform.python_version(), "numpy": numpy.__version__,
                         "scipy": scipy.__version__, "platform": platform.platform()},
@@ -241,9 +276,11 @@ def _source_text(row):
     return lines
 
 
-def report_content(state, *, title):
+def report_content(state, *, title, share=str):
     """
     The report's sections, figures and tables (arguments of :func:`geosp.report.make_report`).
+
+    ``share`` rewrites texts that may hold file paths (the warnings), e.g. :func:`shareable`.
     """
     import pandas as pd
 
@@ -379,6 +416,6 @@ def report_content(state, *, title):
             sections.append({"heading": "No sources", "level": 3,
                              "text": ["No anomaly cleared the false-alarm threshold; no source is reported."]})
     if state.warnings:
-        sections.append({"heading": "Warnings", "text": list(state.warnings)})
+        sections.append({"heading": "Warnings", "text": [share(w) for w in state.warnings]})
     return {"title": title, "survey_summary": _summary_rows(state, title), "sections": sections,
             "figures": figures, "tables": tables, "cautions": CAUTIONS}

@@ -389,7 +389,7 @@ def run_reduce(project, state):
 def run_grid(project, state, *, stage="grid"):
     from .grid import grid_stations
 
-    with _timed(state, "grid"), _Capture() as caught:
+    with _timed(state, "grid" if stage == "grid" else "grid again"), _Capture() as caught:
         grid = grid_stations(state.reduction.stations, **_pick(project.stages["grid"], grid_stations))
     if stage == "grid":
         state.record("grid", caught.texts, grid=grid)
@@ -557,12 +557,13 @@ def execute(project_path, stages, *, out=None, workers=None, scheduler=None, pro
             if note:
                 say(f"geosp: the cache in {out} was not used for every stage ({note}); running them again")
         run_stages(project, state, stages, workers=workers, scheduler=scheduler, progress=progress, say=say)
-        try:
-            write_state(out, version=__version__, keys=keys,
-                        products={s: state.products[s] for s in ORDER if s in state.products})
-        except (CacheError, OSError) as err:
-            say(f"geosp: the stage cache was not written ({err}); single-stage commands will start afresh")
-        written = write_outputs(project, state, staging, publish="publish" in stages)
+        with _timed(state, "write"):
+            try:
+                write_state(out, version=__version__, keys=keys,
+                            products={s: state.products[s] for s in ORDER if s in state.products})
+            except (CacheError, OSError) as err:
+                say(f"geosp: the stage cache was not written ({err}); single-stage commands will start afresh")
+            written = write_outputs(project, state, staging, publish="publish" in stages)
     state.timings["total"] = round(time.perf_counter() - t0, 3)
     say(f"geosp: wrote {', '.join(written)} in {out}")
     return out, state
@@ -622,7 +623,7 @@ def write_outputs(project, state, out, *, publish=False):
         if options.get("report", True):
             from .report import make_report
 
-            content = interpretation.report_content(state, title=title)
+            content = interpretation.report_content(state, title=title, share=interpretation.shareable(project))
             html = make_report(**content, provenance=interpretation.provenance(project, state))
             with atomic_path(out / "report.html") as tmp:
                 tmp.write_text(html, encoding="utf-8")

@@ -56,6 +56,7 @@ _MAX_SNOOP = 20  # at most this many blunders are down-weighted, one per solve
 # A reading this many robust standard deviations (1.4826 MAD) away from the running median of
 # its line's readings stands out (the outlier rule of common practice, applied to gradients).
 _READING_OUTLIER_Z = 4.0
+_STEP_REACH = 3  # stations on each side whose median potentials measure a step
 # Fewest independent loops for the loop-closure variance factor to scale the network covariance.
 _MIN_LOOPS_FOR_FACTOR = 10
 _SAME_PLACE_M = 5.0  # repeated station ids farther apart than this get a warning
@@ -726,10 +727,24 @@ def _unchecked_readings(first, obs, var, line, window, flag):
     fits use; the leg is flagged "unchecked". ``var`` and ``flag`` are
     updated in place; returns how many readings were so treated.
     """
-    anomaly = _gradient_anomaly(obs, line, window)
-    scale = _line_scale(anomaly, line)
-    pick = np.flatnonzero(~np.isfinite(first["std_residual"]) & (flag == "")
-                          & (anomaly > _READING_OUTLIER_Z * np.maximum(scale, 1e-9)))
+    signed = _gradient_anomaly(obs, line, window, signed=True)
+    anomaly = np.abs(signed)
+    limit = _READING_OUTLIER_Z * np.maximum(_line_scale(anomaly, line), 1e-9)
+    # A blunder is a step: the potentials beyond it stay shifted. A station off its line (a
+    # spike) or a sharp local anomaly (a shallow pipe crossed by the line) stands out too, but
+    # the potentials return within a few readings. So the step itself, the median of the
+    # (detrended) potentials over the next readings minus that over the previous ones, must
+    # stand out as well.
+    step = np.zeros(len(signed))
+    for idx in pd.Series(np.arange(len(signed))).groupby(np.asarray(line)).indices.values():
+        idx = np.sort(idx)
+        potential = np.concatenate([[0.0], np.cumsum(signed[idx])])  # at the stations along the line
+        for k in range(len(idx)):
+            before = potential[max(0, k + 1 - _STEP_REACH):k + 1]
+            after = potential[k + 1:k + 1 + _STEP_REACH]
+            step[idx[k]] = np.median(after) - np.median(before)
+    out = (anomaly > limit) & (np.abs(step) > limit)
+    pick = np.flatnonzero(~np.isfinite(first["std_residual"]) & (flag == "") & out)
     for i in pick:
         var[i] += anomaly[i] ** 2
         flag[i] = (f"unchecked: {anomaly[i]:.1f} mV off its neighbours where no loop checks it; "
@@ -791,13 +806,14 @@ def _running_median(values, window):
         return np.nanmedian(view, axis=1)
 
 
-def _gradient_anomaly(obs, line, window):
-    """|reading - running median of the line's readings|: ranks legs within a chain."""
+def _gradient_anomaly(obs, line, window, *, signed=False):
+    """|reading - running median of the line's readings| (signed on request): ranks legs within a chain."""
     score = np.zeros(len(obs))
     for idx in pd.Series(np.arange(len(obs))).groupby(np.asarray(line)).indices.values():
         idx = np.sort(idx)
-        score[idx] = np.abs(obs[idx] - _running_median(obs[idx], window))
-    return np.nan_to_num(score)
+        score[idx] = obs[idx] - _running_median(obs[idx], window)
+    score = np.nan_to_num(score)
+    return score if signed else np.abs(score)
 
 
 def _integrate_tree(n, f, t, dv, corr, ref):

@@ -177,6 +177,17 @@ def _number(value, digits=1):
     return f"{value:.{digits}f}"
 
 
+def _probability(value):
+    """A false-alarm probability to 3 decimals; below 0.001 (the simulations' floor) as "< 0.001"."""
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return "–"
+    if math.isfinite(value) and value < 0.001:
+        return "< 0.001"
+    return _number(value, 3)
+
+
 def _with_range(row, key, lo_key, hi_key, digits=1):
     centre = _number(row.get(key), digits)
     lo, hi = _number(row.get(lo_key), digits), _number(row.get(hi_key), digits)
@@ -279,7 +290,7 @@ def _segment_properties(row):
         "Segment": _text(row.get("segment_id")),
         "Score": _number(row.get("score"), 2),
         "Threshold": _number(row.get("threshold"), 2),
-        "False-alarm probability": _number(row.get("false_alarm_p"), 3),
+        "False-alarm probability": _probability(row.get("false_alarm_p")),
         "Detected": words[decision],
         "Polarity": {1: "+1", -1: "−1"}.get(polarity, "–"),
         "Stations": _text(row.get("n_stations")),
@@ -334,6 +345,35 @@ def _source_properties(row):
 
 
 _RANGE_NOTE = "Values in brackets: 16th to 84th percentile."
+
+#: The map draws at most this many station circles (every flagged station, then an even
+#: sample along the lines); every station is in the GeoPackage.
+MAP_MAX_STATIONS = 5000
+#: The stations layer starts ticked only up to this many stations, so that the circles do not
+#: hide the SP grid and the sources; above it, tick "Stations (SP)" in the layer list.
+MAP_STATIONS_SHOWN = 1500
+#: Above this many vector features, Leaflet draws on a canvas instead of one SVG element each.
+_CANVAS_FROM = 2000
+
+
+def thin_stations(frame, limit=MAP_MAX_STATIONS):
+    """
+    The stations the map draws: all when at most ``limit``; else every flagged
+    station (up to a fifth of ``limit``) and every k-th of the others in file
+    order (stations come line by line), k the smallest that fits ``limit``.
+    Returns (frame, note) with the note None when nothing was left out.
+    """
+    n = len(frame)
+    if n <= limit:
+        return frame, None
+    flag = frame["flag"].fillna("").astype(str).to_numpy() if "flag" in frame else np.full(n, "")
+    flagged = np.flatnonzero(flag != "")[: limit // 5]
+    others = np.setdiff1d(np.arange(n), flagged)
+    step = int(np.ceil(len(others) / max(limit - len(flagged), 1)))
+    keep = np.sort(np.concatenate([flagged, others[::step]]))
+    note = (f"Stations: {len(keep):,} of {n:,} drawn (every flagged station and every {step}th of the "
+            "others along the lines); all are in interpretation.gpkg.")
+    return frame.iloc[keep], note
 
 
 def _add_geojson(folium, group, frame, properties, *, style, marker=None, tooltip_field=None):
@@ -452,7 +492,9 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
     ----------
     stations : GeoDataFrame
         ``stations`` layer (:func:`geosp.tables.stations_frame`) in the
-        working CRS; circle markers coloured by ``sp_mv``.
+        working CRS; circle markers coloured by ``sp_mv``, at most
+        ``MAP_MAX_STATIONS`` of them (:func:`thin_stations`), the layer
+        ticked only up to ``MAP_STATIONS_SHOWN`` stations.
     segments : GeoDataFrame
         ``fault_segments`` layer; lines coloured by ``score``, detected
         segments bold.
@@ -494,8 +536,13 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
 
     cmap = colormaps[_CMAP]
     amplitude = _colour_scale(stations, grid)
+    n_stations = len(stations) if stations is not None else 0
+    thinned_note = None
+    if stations is not None:
+        stations, thinned_note = thin_stations(stations)
     layers = {"stations": _to_wgs84(stations), "segments": _to_wgs84(segments),
               "sources": _to_wgs84(sources)}
+    n_features = sum(len(f) for f in layers.values() if f is not None)
 
     bounds = []
     for frame in layers.values():
@@ -514,7 +561,7 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
         west, south, east, north = -1.0, -1.0, 1.0, 1.0
 
     fmap = folium.Map(location=[(south + north) / 2, (west + east) / 2], zoom_start=13,
-                      tiles=None, control_scale=True)
+                      tiles=None, control_scale=True, prefer_canvas=n_features > _CANVAS_FROM)
     # Nothing from CDNs: Leaflet is inlined below; jQuery, Bootstrap and the
     # marker-icon fonts are not needed by anything on this map.
     fmap.default_js = []
@@ -542,7 +589,8 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
     for key, label in (("sources", "Source footprints (models)"),
                        ("segments", "Fault segments (detection score)"),
                        ("stations", "Stations (SP)")):
-        groups[key] = folium.FeatureGroup(name=label, show=True).add_to(fmap)
+        show = key != "stations" or n_stations <= MAP_STATIONS_SHOWN
+        groups[key] = folium.FeatureGroup(name=label, show=show).add_to(fmap)
 
     frame = layers["sources"]
     if frame is not None and len(frame):
@@ -572,7 +620,10 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
     fmap.fit_bounds([[south, west], [north, east]])
 
     colour_bar = _colour_bar_html(cmap, amplitude, "SP (mV)")
-    figure.html.add_child(folium.Element(_furniture(title, cautions, colour_bar, _RANGE_NOTE)))
+    note = _RANGE_NOTE + (f" {thinned_note}" if thinned_note else "")
+    if n_stations > MAP_STATIONS_SHOWN:
+        note += " Tick “Stations (SP)” in the layer list to show the stations."
+    figure.html.add_child(folium.Element(_furniture(title, cautions, colour_bar, note)))
     document = figure.render()
     check_offline(document)
     return document

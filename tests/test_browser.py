@@ -203,3 +203,23 @@ def test_report_renders_offline_and_inert(browser, pages):
     assert HOSTILE in page.inner_text("h1")
     assert "Parameters" in page.inner_text("body")
     page.close()
+
+
+def test_map_of_50000_stations_opens_and_draws_a_sample_on_request(browser, tmp_path):
+    """The thinned station layer starts off; ticked, it draws at most MAP_MAX_STATIONS circles on a canvas."""
+    from geosp.webmap import MAP_MAX_STATIONS
+    from tests.test_webmap import _many_stations
+
+    path = tmp_path / "large.html"
+    path.write_text(make_webmap(stations=_many_stations(), segments=None, sources=None, title="large"),
+                    encoding="utf-8")
+    page, record = open_page(browser, path)
+    assert page.evaluate(COUNT_LAYERS)["circles"] == 0  # the layer starts unticked
+    page.locator(".leaflet-control-layers-overlays label", has_text="Stations").click()
+    page.wait_for_timeout(200)
+    counts = page.evaluate(COUNT_LAYERS)
+    assert 0.9 * MAP_MAX_STATIONS <= counts["circles"] <= MAP_MAX_STATIONS
+    assert counts["svgPaths"] == 0  # drawn on a canvas, not as 4,600 SVG elements
+    assert page.evaluate("document.querySelectorAll('.leaflet-overlay-pane canvas').length") >= 1
+    assert record["requests"] == [] and record["errors"] == []
+    page.close()

@@ -303,3 +303,26 @@ def test_symlink_loop_is_exit_2(tmp_path, capsys):
     code, out, err = run(capsys, "check", project)
     assert code == 2, err
     assert "loop.shp" in err and "internal error" not in err
+
+
+@pytest.mark.slow
+def test_report_and_run_json_show_no_local_folders(tmp_path, capsys):
+    """Warnings name input files relative to the project folder: a shared report leaks no local paths."""
+    import json
+
+    from tests.test_robustness import readings_survey
+
+    def blunder(table):
+        table.loc[5, "DV"] += 40.0  # on a line no loop checks: warned about, naming dv.csv
+        return table
+
+    project = readings_survey(tmp_path, mutate=blunder)
+    project.write_text(project.read_text().replace("report = false", "report = true"))
+    out = tmp_path / "out"
+    code, _, err = run(capsys, "run", project, "--out", out, "--quiet")
+    assert code == 0, err
+    record = json.loads((out / "run.json").read_text())
+    assert any(w.startswith("dv.csv: ") for w in record["warnings"]), record["warnings"]
+    for name in ("run.json", "report.html"):
+        assert str(tmp_path) not in (out / name).read_text(encoding="utf-8"), name
+    assert "stations.shp" in record["inputs"] and "dv.csv" in record["inputs"]

@@ -203,3 +203,47 @@ def test_grid_overlay_is_web_mercator_and_covers_the_grid():
     # West side is negative SP (blue), east side positive (red) on RdBu_r.
     west, east = image[image.shape[0] // 2, 3], image[image.shape[0] // 2, -3]
     assert west[2] > west[0] and east[0] > east[2]
+
+
+def _many_stations(n_lines=100, per_line=500):
+    """A 50,000-station survey on north-south lines; every 997th station flagged."""
+    e = 500000.0 + np.repeat(np.arange(n_lines) * 80.0, per_line)
+    n = 4000000.0 + np.tile(np.arange(per_line) * 20.0, n_lines)
+    ids = [f"L{i // per_line:03d}-{i % per_line:03d}" for i in range(e.size)]
+    st = Stations(station_id=ids, easting=e, northing=n, upward=np.zeros(e.size),
+                  sp_mv=30.0 * np.sin(e / 700.0), crs=CRS, line_id=[i[:4] for i in ids],
+                  flag=["outlier" if i % 997 == 0 else "" for i in range(e.size)])
+    return tables.stations_frame(st)
+
+
+def test_large_survey_map_draws_a_thinned_sample_keeping_flagged_stations():
+    from geosp.webmap import MAP_MAX_STATIONS, thin_stations
+
+    frame = _many_stations()
+    thinned, note = thin_stations(frame)
+    assert len(thinned) <= MAP_MAX_STATIONS
+    assert set(frame.index[frame["flag"] != ""]) <= set(thinned.index)  # every flagged station drawn
+    # The sample is even along the lines: the gaps between drawn stations of one line are equal.
+    line = thinned[thinned["line_id"] == "L050"].index.to_numpy()
+    gaps = np.diff(line)
+    assert len(set(gaps[(gaps > 1) & (gaps < 20)].tolist())) <= 2
+    assert f"{len(thinned):,} of 50,000 drawn" in note
+    small = frame.iloc[:300]
+    got, none = thin_stations(small)
+    assert got is small and none is None
+
+
+def test_large_survey_map_stays_small_and_starts_with_the_stations_off():
+    document = make_webmap(stations=_many_stations(), segments=None, sources=None, title="large")
+    assert len(document) < 5e6
+    assert "of 50,000 drawn" in document
+    assert "Tick “Stations (SP)” in the layer list" in document
+    check_offline(document)
+
+
+def test_false_alarm_probability_at_the_simulation_floor_reads_as_a_bound():
+    from geosp.webmap import _probability
+
+    assert _probability(1 / 1001) == "< 0.001"  # no simulated survey scored as high: a bound, not a value
+    assert _probability(0.0123) == "0.012"
+    assert _probability(float("nan")) == "–" and _probability(None) == "–"
