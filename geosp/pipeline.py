@@ -709,10 +709,30 @@ def forward(sources_path, stations_path, *, out=None, layer="sources"):
     stations = stations.to_crs(crs)
     coordinates = (stations.geometry.x.to_numpy(), stations.geometry.y.to_numpy())
     rows = sources.drop(columns="geometry").to_dict("records")
+    _near_the_sources(coordinates, rows, sources_path, stations_path, crs)
     stations["model_mv"] = sources_sp(coordinates, rows)
     if out is None:
         return None, stations.drop(columns="geometry").to_string(index=False, max_rows=60)
     return write_forward_output(stations, Path(out)), ""
+
+
+def _near_the_sources(coordinates, rows, sources_path, stations_path, crs):
+    """Refuse stations that are all far from every source: mistyped coordinates or another CRS."""
+    from pathlib import Path
+
+    x, y = (np.asarray(c, dtype=float) for c in coordinates)
+    tops = np.array([[r["top_x"], r["top_y"]] for r in rows], dtype=float)
+    if x.size == 0 or tops.size == 0:
+        return
+    size = max([float(r.get(k) or 0.0) for r in rows for k in ("bottom_depth_m", "length_m")] + [0.0])
+    reach = max(10_000.0, 20.0 * size)
+    nearest = float(np.min(np.hypot(x[:, None] - tops[None, :, 0], y[:, None] - tops[None, :, 1])))
+    if not nearest <= reach:
+        raise InputError(stations_path, f"no station lies within {reach / 1000:.0f} km of a source of "
+                         f"{Path(sources_path).name} (the nearest is {nearest / 1000:,.0f} km away), where "
+                         "their SP would be zero.",
+                         f"Check the coordinates: x,y columns must be in the sources' CRS ({crs.name}), "
+                         "or give lon,lat.")
 
 
 def section(model_path, *, stations=None, out):

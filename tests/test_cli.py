@@ -225,6 +225,22 @@ def test_forward_predicts_a_pole_at_stations(tmp_path, capsys):
     np.testing.assert_allclose(result["model_mv"], expected, rtol=1e-5)
 
 
+def test_forward_refuses_stations_far_from_every_source(tmp_path, capsys):
+    """Coordinates typed ten times too large put every station thousands of km away: exit 2, not 0 mV."""
+    sources = gpd.GeoDataFrame(
+        {"source_id": ["S1"], "model": ["pole_pair"], "top_x": [500000.0], "top_y": [4500000.0],
+         "top_depth_m": [30.0], "neg_x": [500500.0], "neg_y": [4500000.0], "neg_depth_m": [30.0],
+         "pole_k_mv_m": [-2000.0]},
+        geometry=[Point(500000.0, 4500000.0).buffer(5)], crs=UTM)
+    sources.to_file(tmp_path / "src.gpkg", layer="sources")
+    (tmp_path / "st.csv").write_text("name,x,y\nA,5000400,45000000\n")
+    code, out, err = run(capsys, "forward", tmp_path / "src.gpkg", tmp_path / "st.csv")
+    assert code == 2, (out, err)
+    assert "st.csv" in err and "no station lies within" in err and "EPSG:32633" not in out
+    code, _, err = run(capsys, "forward", tmp_path / "missing.gpkg", tmp_path / "st.csv")
+    assert code == 2 and "does not exist" in err and "geosp forward" in err
+
+
 def test_real_exit_code_and_no_traceback_in_a_subprocess(tmp_path):
     project = write_survey(tmp_path / "s", "shp")
     (project.parent / "stations.shx").unlink()

@@ -83,7 +83,7 @@ def section_figure(result, *, title=None, depth_m=None):
     if temperature is not None:
         lines = sec.contour(xc[xs], zc[zs], temperature[np.ix_(xs, zs)].T, colors="k",
                             linewidths=0.7, levels=8)
-        sec.clabel(lines, fontsize=7, fmt="%.0f K")
+        sec.clabel(lines, fontsize=7, fmt="+%.0f K")  # temperature above the surface temperature
     elif pressure is not None:
         lines = sec.contour(xc[xs], zc[zs], 1e-6 * pressure[np.ix_(xs, zs)].T, colors="k",
                             linewidths=0.7, linestyles="--", levels=8)

@@ -27,7 +27,8 @@ def read_vector(path, *, layer="", what="file"):
     """
     path = Path(path)
     if not path.exists():
-        raise InputError(path, f"the {what} does not exist.", "Check the path in the project file.")
+        raise InputError(path, f"the {what} does not exist.", "Check the path (in the project file, or on the "
+                         "command line for geosp forward).")
     suffix = path.suffix.lower()
     if suffix not in VECTOR_SUFFIXES:
         raise InputError(path, f"unsupported {what} format '{suffix}'.",
