@@ -137,6 +137,27 @@ def test_spacings_recovered_from_survey_pattern(angle_deg, line_ids):
     assert line_spacing(stations) == pytest.approx(LINE_SPACING, rel=0.01)
 
 
+def test_line_spacing_is_not_shortened_by_tie_lines():
+    # Reference: the layout. 11 east-west lines 290 m apart (stations every 25 m over 2 km) and
+    # 4 north-south tie lines crossing them (stations every 25 m): a station near a crossing
+    # has a tie-line station a few metres away, which is no measure of the line spacing.
+    along = np.arange(0.0, 2001.0, 25.0)
+    xs, ys, ids = [], [], []
+    for i in range(11):
+        xs.append(along)
+        ys.append(np.full(along.size, 290.0 * i))
+        ids += [f"L{i:02d}"] * along.size
+    tie = np.arange(0.0, 2901.0, 25.0)
+    for j, x0 in enumerate((110.0, 610.0, 1310.0, 1890.0)):
+        xs.append(np.full(tie.size, x0))
+        ys.append(tie)
+        ids += [f"T{j}"] * tie.size
+    x, y = np.concatenate(xs), np.concatenate(ys)
+    stations = Stations(np.arange(x.size).astype(str), x, y, np.zeros(x.size), np.zeros(x.size),
+                        "EPSG:32611", line_id=np.array(ids))
+    assert line_spacing(stations) == pytest.approx(290.0, rel=0.03)
+
+
 def test_scattered_stations_use_mean_spacing_and_grid_a_smooth_field():
     # Reference: for 400 uniformly scattered stations the mean spacing is
     # sqrt(area / n) by definition (area of their convex hull, from shapely as an
@@ -411,3 +432,24 @@ def test_grid_figure_centred_colour_map_with_stations_and_faults(smooth_result):
     assert ax.get_title() == "Test map"
     assert not ax.xaxis.get_major_formatter().get_useOffset()
     FigureCanvasAgg(fig).draw()  # renders without a display
+
+
+def test_a_lone_blank_node_among_kept_nodes_is_kept():
+    # Stations every 10 m on a 200 m square, without the 3 x 3 stations around (100, 100): with a
+    # mask distance of 18 m only the node at the centre of the gap is farther than that from
+    # every station (20 m). It is a pinhole among kept nodes, so it is kept; its distance stays
+    # the true 20 m.
+    from scipy.spatial import ConvexHull
+
+    g = np.arange(0.0, 201.0, 10.0)
+    x, y = (a.ravel() for a in np.meshgrid(g, g))
+    keep = ~((np.abs(x - 100.0) < 15.0) & (np.abs(y - 100.0) < 15.0))
+    x, y = x[keep], y[keep]
+    hull = ConvexHull(np.column_stack([x - x.mean(), y - y.mean()]))
+    nodes = np.arange(0.0, 201.0, 5.0)
+    distance, inside = grid_module._distance_and_mask(nodes, nodes, x, y, hull, 18.0)
+    centre = (nodes == 100.0)
+    assert distance[centre, centre][0] == pytest.approx(20.0)
+    assert (distance[1:-1, 1:-1] > 18.0).sum() == 1  # the only node beyond the mask distance
+    assert inside[centre, centre][0]
+    assert inside[1:-1, 1:-1].all()
