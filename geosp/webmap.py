@@ -325,12 +325,20 @@ def _source_properties(row):
             "Pole strength (mV·m)": _number(row.get("pole_k_mv_m"), 0),
         })
     else:
+        geo = _number(row.get("geo_mean_depth_m"), 0)
+        if _number(row.get("geo_mean_depth_sd_m"), 0) != "–":
+            geo += f" ± {_number(row.get('geo_mean_depth_sd_m'), 0)}"
         props.update({
             "Top depth (m)": _with_range(row, "top_depth_m", "top_depth_lo_m", "top_depth_hi_m"),
+            "Top edge centre E / N (m)": f"{_number(row.get('top_x'), 0)} / {_number(row.get('top_y'), 0)}",
+            "Top elevation (m above sea level)": _number(_difference(row.get("ground_m"),
+                                                                     row.get("top_depth_m")), 0),
+            "√(top·bottom) depth (m, best resolved)": geo,
             "Bottom depth (m)": _number(row.get("bottom_depth_m")),
             "Jump (mV)": _with_range(row, "jump_mv", "jump_lo_mv", "jump_hi_mv"),
-            "Strike / dip (°)": f"{_number(row.get('strike_deg'), 0)} / "
-                                f"{_number(row.get('dip_deg'), 0)}",
+            "Strike / dip / dip direction (°)": f"{_number(row.get('strike_deg'), 0)} / "
+                                                f"{_number(row.get('dip_deg'), 0)} / "
+                                                f"{_number(row.get('dip_dir_deg'), 0)}",
             "Length (m)": _number(row.get("length_m"), 0),
             "σ ratio": _number(row.get("sigma_ratio"), 2),
         })
@@ -338,10 +346,45 @@ def _source_properties(row):
         "RMS (mV)": _number(row.get("rms_mv"), 2),
         "χ² (reduced)": _number(row.get("chi2_red"), 2),
         "BIC gain": _number(row.get("bic_gain"), 1),
-        "Flags": _text(row.get("flags")) or "–",
+        "Cautions": _flag_words(row.get("flags")),
         "_colour": colour, "_weight": weight, "_dash": dash, "_fill": fill,
     })
     return props
+
+
+def _difference(a, b):
+    try:
+        return float(a) - float(b)
+    except (TypeError, ValueError):
+        return float("nan")
+
+
+_PARAMETER_WORDS = {"top_depth_m": "top depth", "height_m": "height", "bottom_depth_m": "bottom depth",
+                    "length_m": "length", "dip_deg": "dip", "sigma_ratio": "conductivity ratio",
+                    "strength": "strength", "jump_mv": "jump", "pole_depth_m": "pole depth",
+                    "neg_depth_m": "negative pole depth", "log_casing_length": "casing length"}
+
+
+def _flag_words(flags):
+    """The ``flags`` codes (docs/outputs.md) in words for the popup."""
+    words = []
+    for code in str(flags or "").split(";"):
+        code = code.strip()
+        if not code or code == "nan":
+            continue
+        if code.startswith("bound:"):
+            name = code[6:]
+            words.append(f"{_PARAMETER_WORDS.get(name, name)} at its limit (not resolved)")
+        elif code.startswith("corr:"):
+            a, _, b = code[5:].partition("/")
+            words.append(f"{_PARAMETER_WORDS.get(a, a)} and {_PARAMETER_WORDS.get(b, b)} trade off")
+        elif code == "terrain":
+            words.append("uneven ground above the source")
+        elif code == "dip-contrast approximation":
+            words.append("conductivity contrast approximate (dip below 80°)")
+        else:
+            words.append(code)
+    return _text("; ".join(words)) or "–"
 
 
 _RANGE_NOTE = "Values in brackets: 16th to 84th percentile."

@@ -247,3 +247,18 @@ def test_false_alarm_probability_at_the_simulation_floor_reads_as_a_bound():
     assert _probability(1 / 1001) == "< 0.001"  # no simulated survey scored as high: a bound, not a value
     assert _probability(0.0123) == "0.012"
     assert _probability(float("nan")) == "–" and _probability(None) == "–"
+
+
+def test_source_popup_reads_as_words_with_position_and_elevation():
+    from geosp.webmap import _flag_words, _source_properties
+
+    words = _flag_words("bound:dip_deg; corr:top_depth_m/strength; terrain")
+    assert words == "dip at its limit (not resolved); top depth and strength trade off; uneven ground above the source"
+    row = dict(source_id="S1", model="fault_patch", status="target", top_x=500250.4, top_y=4000200.0,
+               top_depth_m=130.0, ground_m=1030.0, geo_mean_depth_m=300.0, geo_mean_depth_sd_m=12.0,
+               strike_deg=10.0, dip_deg=70.0, dip_dir_deg=100.0, flags="")
+    props = _source_properties(row)
+    assert props["Top edge centre E / N (m)"] == "500250 / 4000200"
+    assert props["Top elevation (m above sea level)"] == "900"  # 1030 m ground − 130 m depth
+    assert props["√(top·bottom) depth (m, best resolved)"] == "300 ± 12"
+    assert props["Strike / dip / dip direction (°)"] == "10 / 70 / 100"
