@@ -16,8 +16,9 @@ stations, not to grid nodes. The steps are
 4. choose tension and damping by spatially blocked cross-validation
    (leave lines out, or blocks at least one line spacing wide);
 5. mask nodes farther than ``mask_distance_m`` from every station or outside
-   the convex hull of the stations (a lone masked node with at least 7 of its
-   8 neighbours kept is kept too).
+   the convex hull of the stations, widened by half a cell diagonal so that
+   the node nearest to every station holds a value (a lone masked node with at
+   least 7 of its 8 neighbours kept is kept too).
 
 Nothing here reads or writes files.
 
@@ -763,8 +764,9 @@ def grid_stations(
         Nodes farther than this from every station are NaN; "auto"
         (default) is 0.6 × the line spacing (measured across the lines,
         crossing tie lines left out). Nodes outside the convex hull of the
-        stations are NaN too; a lone NaN node whose 8 neighbours are all
-        but one kept is kept.
+        stations (widened by half a cell diagonal, so that every station's
+        nearest node has a value) are NaN too; a lone NaN node whose 8
+        neighbours are all but one kept is kept.
     cv : {"lines", "blocks", "random", "none"}, optional
         Cross-validation folds. "lines" (default): whole lines are left out,
         neighbouring lines in different folds (needs line ids; otherwise
@@ -958,7 +960,11 @@ def _distance_and_mask(easting, northing, x, y, hull, mask_distance):
     cand = np.flatnonzero(inside)
     eq = hull.equations
     pts = np.column_stack([ge.ravel()[cand] - x.mean(), gn.ravel()[cand] - y.mean()])
-    tol = 1e-9 * max(np.ptp(x), np.ptp(y), 1.0)
+    # Nodes within half a cell diagonal outside the hull stay: the hull runs through the outer
+    # stations, and the node nearest to each of them must hold a value.
+    cell = max(abs(easting[1] - easting[0]) if len(easting) > 1 else 0.0,
+               abs(northing[1] - northing[0]) if len(northing) > 1 else 0.0)
+    tol = max(0.5 * math.sqrt(2.0) * cell, 1e-9 * max(np.ptp(x), np.ptp(y), 1.0))
     out_hull = np.any(pts @ eq[:, :2].T + eq[:, 2] > tol, axis=1)
     inside.ravel()[cand[out_hull]] = False
     return distance, inside

@@ -453,3 +453,19 @@ def test_a_lone_blank_node_among_kept_nodes_is_kept():
     assert (distance[1:-1, 1:-1] > 18.0).sum() == 1  # the only node beyond the mask distance
     assert inside[centre, centre][0]
     assert inside[1:-1, 1:-1].all()
+
+
+@pytest.mark.parametrize("angle_deg", [0.0, 33.0])
+def test_grid_covers_every_station(angle_deg):
+    # Every station lies inside the grid's extent, and the node nearest to it holds a value:
+    # a grid that lost its last row or column, or masked a station's own node, fails here.
+    stations = line_survey(angle_deg=angle_deg, n_lines=5)
+    raster = grid_stations(stations, cv="none", tension=0.3, damping=1e-3).grid
+    e, n = np.asarray(raster.easting), np.asarray(raster.northing)
+    half = 0.5 * abs(e[1] - e[0])
+    assert e.min() - half <= stations.easting.min() and stations.easting.max() <= e.max() + half
+    assert n.min() - half <= stations.northing.min() and stations.northing.max() <= n.max() + half
+    col = np.abs(e[None, :] - stations.easting[:, None]).argmin(axis=1)
+    row = np.abs(n[None, :] - stations.northing[:, None]).argmin(axis=1)
+    values = np.asarray(raster.values)[row, col]
+    assert np.isfinite(values).all(), int((~np.isfinite(values)).sum())

@@ -592,3 +592,58 @@ def test_station_without_readings_is_flagged_not_given_a_value():
     integ = red.qc["integration"].set_index("station_id")
     assert integ.loc["S00-024", "n_readings"] == 24
     npt.assert_allclose(integ.loc["S00-024", "raw_sigma_mv"], np.sqrt(24.0))
+
+
+# ------------------------------------------------------------------ the error model, pinned
+
+
+def _dense_adjustment(survey, reading_sigma):
+    """Least squares of the readings by numpy alone: (potentials, posterior variances, chi2, dof)."""
+    ids = list(survey.stations.station_id)
+    pos = {s: i for i, s in enumerate(ids)}
+    rd = survey.readings
+    m, n = len(rd.dv_mv), len(ids)
+    a = np.zeros((m, n))
+    a[np.arange(m), [pos[s] for s in rd.from_id]] = -1
+    a[np.arange(m), [pos[s] for s in rd.to_id]] = 1
+    ref = pos[survey.reference_station]
+    a = np.delete(a, ref, axis=1)
+    x, *_ = np.linalg.lstsq(a, rd.dv_mv, rcond=None)
+    r = rd.dv_mv - a @ x
+    chi2 = float(r @ r) / reading_sigma**2
+    var = np.zeros(n)
+    var[np.delete(np.arange(n), ref)] = reading_sigma**2 * np.diag(np.linalg.inv(a.T @ a))
+    return var, chi2, m - (n - 1)
+
+
+def test_network_chi2_above_its_dof_scales_the_station_sigma():
+    # Readings with 2.5 mV noise reduced with reading_sigma_mv = 1 (a draw in which no leg is
+    # flagged): loop closure gives χ²/dof = 2.6, and the stations' network uncertainty is the
+    # posterior one scaled by sqrt(χ²/dof) (a posteriori variance of unit weight, as for a
+    # levelling network [Ghilani2010]), combined in quadrature with station_sigma_mv.
+    # Reference: the dense least squares above.
+    survey, _ = grid_survey(noise=2.5, seed=2, offsets=False)
+    red = reduce_quiet(survey, reading_sigma_mv=1.0, station_sigma_mv=2.0, drift=False)
+    assert (red.qc["legs"]["flag"] == "").all()
+    var, chi2, dof = _dense_adjustment(survey, 1.0)
+    assert red.network["chi2"] == pytest.approx(chi2, rel=1e-6) and red.network["dof"] == dof
+    assert chi2 / dof > 2.0
+    expected = np.sqrt(var * chi2 / dof + 2.0**2)
+    order = [list(survey.stations.station_id).index(s) for s in red.stations.station_id]
+    npt.assert_allclose(red.stations.sigma_mv, expected[order], rtol=1e-6)
+
+
+def test_blunder_test_level_is_five_percent_bonferroni():
+    # The blunder threshold is the two-sided 5 % Bonferroni level over the legs that loops
+    # check, max(blunder_sigma, z(0.025 / n)) [Ghilani2010]. Pinned against scipy, and by
+    # simulation: blunder-free networks are flagged at most about 5 % of the time (binomial
+    # test at the 1 % level).
+    survey, _ = grid_survey(noise=1.0, seed=8, offsets=False)
+    red = reduce_quiet(survey, reading_sigma_mv=1.0, drift=False)
+    n_checked = int(np.isfinite(red.qc["legs"]["std_residual"]).sum())
+    assert red.network["blunder_threshold"] == pytest.approx(max(3.0, stats.norm.isf(0.025 / n_checked)))
+    flagged = 0
+    for seed in range(100):
+        s, _ = grid_survey(noise=1.0, seed=2000 + seed, offsets=False)
+        flagged += int(len(reduce_quiet(s, reading_sigma_mv=1.0, drift=False).network["blunders"]) > 0)
+    assert stats.binomtest(flagged, 100, 0.05, alternative="greater").pvalue > 0.01, flagged
