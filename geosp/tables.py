@@ -66,6 +66,11 @@ MIN_HALF_WIDTH_M = 1.0
 #: this fraction of the top depth (common practice: horizontal position of a
 #: buried edge is known to a fraction of its depth).
 DEPTH_FRACTION = 0.1
+#: A pole pair's footprint half-width is at most this many times its positive pole's depth
+#: (never less than POLE_MIN_REACH_M): the linearised location uncertainty of two poles that sit
+#: together is degenerate (kilometres for a pole 13 m deep under dense stations).
+POLE_REACH_DEPTHS = 3.0
+POLE_MIN_REACH_M = 25.0
 
 
 def _column(values, n, fill=np.nan, dtype=float):
@@ -194,14 +199,21 @@ def footprint_half_width(row):
     ``location_sd_m`` (the 1-sigma horizontal location uncertainty of the
     source) when the row has a positive one, else :data:`DEPTH_FRACTION`
     times the top depth (the mean pole depth for a pole pair); never less
-    than :data:`MIN_HALF_WIDTH_M`.
+    than :data:`MIN_HALF_WIDTH_M`. For a pole pair, at most
+    :data:`POLE_REACH_DEPTHS` times the positive pole's depth (at least
+    :data:`POLE_MIN_REACH_M`).
     """
     sd = _num(row, "location_sd_m")
+    if str(row.get("model", "")) == "pole_pair":
+        top = _num(row, "top_depth_m")
+        cap = max(POLE_REACH_DEPTHS * top, POLE_MIN_REACH_M) if np.isfinite(top) else np.inf
+        if np.isfinite(sd) and sd > 0:
+            return max(min(sd, cap), MIN_HALF_WIDTH_M)
+        depth = np.nanmean([top, _num(row, "neg_depth_m")])
+        return max(min(DEPTH_FRACTION * abs(depth), cap), MIN_HALF_WIDTH_M)
     if np.isfinite(sd) and sd > 0:
         return max(sd, MIN_HALF_WIDTH_M)
     depth = _num(row, "top_depth_m")
-    if str(row.get("model", "")) == "pole_pair":
-        depth = np.nanmean([depth, _num(row, "neg_depth_m")])
     if not np.isfinite(depth):
         depth = 0.0
     return max(DEPTH_FRACTION * abs(depth), MIN_HALF_WIDTH_M)

@@ -128,6 +128,17 @@ def test_pole_pair_footprint_and_fields():
     assert frame["n_stations"].dtype == "int64"
 
 
+def test_pole_pair_footprint_is_not_widened_by_a_degenerate_location_sd():
+    # A casing pole 13 m deep whose linearised location sd came out at 20 km: the disc is at
+    # most 3 x 13 = 39 m in radius (docs/outputs.md, footprint rule); the field keeps 20 km.
+    row = dict(source_id="Q1", fault_id="F2", segment_id="F2-1", model="pole_pair",
+               top_x=1000.0, top_y=2000.0, top_depth_m=13.0, neg_x=1000.0, neg_y=2000.0,
+               neg_depth_m=4966.0, pole_k_mv_m=250.0, location_sd_m=19971.0, flags=[])
+    frame = tables.sources_frame([row], CRS)
+    assert frame.geometry.iloc[0].area == pytest.approx(math.pi * 39.0**2, rel=1e-2)
+    assert frame["location_sd_m"].iloc[0] == 19971.0
+
+
 def test_sources_3d_z_is_ground_minus_depth():
     frame = tables.sources_3d_frame([patch_row()], CRS, ground_m=350.0)
     coords = np.asarray(frame.geometry.iloc[0].exterior.coords)
