@@ -305,6 +305,16 @@ def report_content(state, *, title, share=str):
         net = red.network
         qc_text.append(f"Loop closure: χ² = {_fmt(net.get('chi2'), 1)} for {net.get('dof')} independent loops "
                        f"(p = {_fmt(net.get('p_value'), 3)}).")
+        mode = net.get("mode")
+        if mode:
+            words = {"leapfrog": "leapfrog readings (the electrode offset alternates in sign from one "
+                                 "reading to the next)",
+                     "fixed_lead": "fixed-lead readings (the electrode offset has the same sign on every reading)",
+                     "none": "readings without an electrode-offset correction"}.get(mode, mode)
+            tried = net.get("chi2_by_mode")
+            how = (" Both were tried and loop closure chose: χ² " + ", ".join(
+                f"{m.replace('_', '-')} {_fmt(v, 1)}" for m, v in tried.items()) + ".") if tried else ""
+            qc_text.append(f"The electrode offsets were removed as for {words}.{how}")
     if red.terrain and red.terrain.get("applied"):
         t = red.terrain
         qc_text.append(f"Terrain correction: SP changes by {_fmt(t['slope_mv_per_m'], 2)} mV per metre of elevation "
@@ -328,6 +338,13 @@ def report_content(state, *, title, share=str):
     for key, caption in (("lines", "Per-line QC"), ("loops", "Per-loop misclosure"), ("days", "Per-day electrode QC"),
                          ("legs", "Largest standardized residuals")):
         frame = red.qc.get(key) if red.qc else None
+        if key == "legs" and isinstance(frame, pd.DataFrame) and len(frame):
+            # The legs of one stretch between crossings share its standardized residual: one
+            # row per stretch, only legs that loops check, flagged legs always shown.
+            checked = frame[(frame["redundancy"] > 1e-3) | (frame["flag"] != "")]
+            key_value = checked["std_residual"].round(3).astype(str) + checked["flag"].str[:8]
+            frame = checked[~key_value.duplicated()].head(15)
+            caption = "Largest standardized residuals (one leg per stretch between loop crossings)"
         if isinstance(frame, pd.DataFrame) and len(frame):
             tables[caption] = frame.head(25)
             table_names.append(caption)

@@ -121,6 +121,8 @@ def _key_value_html(mapping):
         if isinstance(value, (dict, list, tuple)) and not isinstance(value, str):
             shown = json.dumps(value, indent=1, default=str, ensure_ascii=False)
             cell = f'<pre class="prov">{_text(shown)}</pre>'
+        elif isinstance(value, str) and "\n" in value:  # the project file: kept as written
+            cell = f'<pre class="prov">{_text(value)}</pre>'
         else:
             cell = _text(_format_cell(value))
         rows.append(f"<tr><th>{_text(key)}</th><td>{cell}</td></tr>")
