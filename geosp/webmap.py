@@ -504,6 +504,30 @@ def _colour_bar_html(cmap, amplitude, label):
     )
 
 
+def _legend_html():
+    """What the line and outline styles mean (the colour bar explains the SP colours)."""
+    def sample(colour, weight, dash, fill=0.0):
+        dash_attr = f' stroke-dasharray="{dash}"' if dash else ""
+        if fill:
+            return (f'<svg width="30" height="12"><rect x="2" y="2" width="26" height="8" fill="{colour}" '
+                    f'fill-opacity="{max(fill, 0.1)}" stroke="{colour}" stroke-width="{weight}"{dash_attr}/></svg>')
+        return (f'<svg width="30" height="12"><line x1="1" y1="6" x2="29" y2="6" stroke="{colour}" '
+                f'stroke-width="{weight}"{dash_attr}/></svg>')
+
+    rows = [(sample(*_SEGMENT_STYLE["detected"]), "fault segment with a source"),
+            (sample(*_SEGMENT_STYLE["marginal"]), "marginal: worth a second look"),
+            (sample(*_SEGMENT_STYLE["cultural"]), "anomaly explained by a cultural source"),
+            (sample(*_SEGMENT_STYLE["no"]), "no anomaly detected"),
+            (sample(*_SOURCE_STYLE["target"]), "source footprint (model)"),
+            (sample(*_SOURCE_STYLE["uncertain"]), "uncertain source: not a target"),
+            (sample(*_SOURCE_STYLE["cultural"]), "likely cultural (pipe, casing)")]
+    body = "".join(f'<div style="display:flex;align-items:center;gap:6px">{svg}<span>{text}</span></div>'
+                   for svg, text in rows)
+    return (f'<div id="geosp-legend" class="geosp-box" style="bottom:100px;right:10px;width:230px">'
+            f'<div style="font-weight:bold;margin-bottom:3px">Legend</div>{body}'
+            '<div style="color:#555;margin-top:3px">Click a feature for its values.</div></div>')
+
+
 def _furniture(title, cautions, colour_bar, note):
     items = "".join(f"<li>{_text(c)}</li>" for c in cautions)
     heading = (f'<div id="geosp-title" class="geosp-box" style="top:10px;left:60px">'
@@ -519,6 +543,7 @@ def _furniture(title, cautions, colour_bar, note):
 <div id="geosp-cautions" class="geosp-box" role="note" style="bottom:64px;left:10px;max-width:330px">
 <b>Caution</b><ul>{items}</ul><div style="margin-top:3px;color:#555">{_text(note)}</div></div>
 {colour_bar}
+{_legend_html()}
 """
 
 

@@ -262,3 +262,10 @@ def test_source_popup_reads_as_words_with_position_and_elevation():
     assert props["Top elevation (m above sea level)"] == "900"  # 1030 m ground − 130 m depth
     assert props["√(top·bottom) depth (m, best resolved)"] == "300 ± 12"
     assert props["Strike / dip / dip direction (°)"] == "10 / 70 / 100"
+
+
+def test_map_has_a_legend_for_faults_and_sources(document):
+    legend = document[document.index('id="geosp-legend"'):]
+    for text in ("fault segment with a source", "marginal: worth a second look", "no anomaly detected",
+                 "uncertain source: not a target", "likely cultural"):
+        assert text in legend
