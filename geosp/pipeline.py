@@ -602,10 +602,19 @@ def write_outputs(project, state, out, *, publish=False):
         layers["sources"] = tables.sources_frame(rows, crs, coverage=coverage)
         layers["sources_3d"] = tables.sources_3d_frame(rows, crs, ground_m=interpretation.source_ground(state, rows))
     write_layers(out / "interpretation.gpkg", layers)
+    extra = []
+    if "sources" in layers:
+        with atomic_path(out / "targets.csv") as tmp:
+            tables.targets_frame(layers["sources"]).to_csv(tmp, index=False)
+        extra.append("targets.csv")
+        if len(layers["sources"]):
+            with atomic_path(out / "sources.kml") as tmp:
+                tables.kml_frame(layers["sources"]).to_file(tmp, driver="KML", layer="sources")
+            extra.append("sources.kml")
     rasters = interpretation.rasters(state)
     for name, raster in rasters.items():
         write_geotiff(raster, out / name, tags=raster.tags)
-    written = ["interpretation.gpkg"] + list(rasters)
+    written = ["interpretation.gpkg"] + extra + list(rasters)
     if publish:
         options = project.stages["publish"]
         title = options.get("title") or state.survey.name

@@ -455,3 +455,64 @@ def sources_3d_frame(rows, crs, ground_m=None):
     frame = gpd.GeoDataFrame(table, geometry=geometry, crs=crs)
     frame.attrs["geometry_type"] = "Polygon Z"
     return frame
+
+
+#: Columns of targets.csv (docs/outputs.md), in order.
+TARGET_COLUMNS = ("source_id", "status", "fault_id", "segment_id", "top_x", "top_y", "lon", "lat", "ground_m",
+                  "top_depth_m", "top_depth_lo_m", "top_depth_hi_m", "top_elevation_m", "geo_mean_depth_m",
+                  "geo_mean_depth_sd_m", "bottom_depth_m", "strike_deg", "dip_deg", "dip_dir_deg", "length_m",
+                  "jump_mv", "flags")
+
+
+def targets_frame(sources):
+    """
+    The fault-patch sources as a plain table for a drilling program (``targets.csv``).
+
+    ``target`` rows first, then ``uncertain`` ones (listed with their status,
+    not to be drilled on their own); cultural sources left out. Adds the
+    top edge centre in longitude and latitude (WGS 84) and its elevation
+    above sea level (``ground_m`` − ``top_depth_m``; NaN without a DEM).
+    """
+    import pyproj
+
+    columns = list(TARGET_COLUMNS)
+    if sources is None or len(sources) == 0 or "model" not in sources:
+        return pd.DataFrame(columns=columns)
+    frame = pd.DataFrame(sources.drop(columns="geometry", errors="ignore"))
+    frame = frame[frame["model"] == "fault_patch"].copy()
+    order = {"target": 0, "uncertain": 1}
+    frame = frame[frame.get("status", "target").isin(order)] if "status" in frame else frame
+    frame = frame.sort_values("status", key=lambda s: s.map(order), kind="stable") if "status" in frame else frame
+    if len(frame) and sources.crs is not None:
+        to_wgs84 = pyproj.Transformer.from_crs(sources.crs, "EPSG:4326", always_xy=True)
+        frame["lon"], frame["lat"] = to_wgs84.transform(frame["top_x"].to_numpy(), frame["top_y"].to_numpy())
+    ground = frame["ground_m"] if "ground_m" in frame else np.nan
+    frame["top_elevation_m"] = ground - frame["top_depth_m"] if len(frame) else np.nan
+    for name in columns:
+        if name not in frame:
+            frame[name] = np.nan
+    frame = frame[columns].reset_index(drop=True)
+    numeric = [c for c in columns if c not in ("source_id", "status", "fault_id", "segment_id", "flags")]
+    frame[numeric] = frame[numeric].apply(pd.to_numeric, errors="coerce")
+    return frame.round({**{c: 1 for c in numeric}, "lon": 7, "lat": 7, "geo_mean_depth_sd_m": 1})
+
+
+def kml_frame(sources):
+    """Source footprints in WGS 84 with a Name and a Description, for a globe viewer (``sources.kml``)."""
+    import geopandas as gpd
+
+    def describe(row):
+        status = row.get("status") or ""
+        if row.get("model") == "pole_pair":
+            return f"{status}; pole pair, positive pole {_num(row, 'top_depth_m'):.0f} m deep"
+        top_elev = _num(row, "ground_m") - _num(row, "top_depth_m")
+        elevation = f", top at {top_elev:.0f} m above sea level" if np.isfinite(top_elev) else ""
+        return (f"{status}; fault patch on {row.get('fault_id', '')}: top {_num(row, 'top_depth_m'):.0f} m deep"
+                f"{elevation}; sqrt(top x bottom) {_num(row, 'geo_mean_depth_m'):.0f} m; dip "
+                f"{_num(row, 'dip_deg'):.0f} deg toward {_num(row, 'dip_dir_deg'):.0f} deg; jump "
+                f"{_num(row, 'jump_mv'):.0f} mV. A model, not an observation.")
+
+    rows = sources.drop(columns="geometry").to_dict("records")
+    return gpd.GeoDataFrame({"Name": [str(r.get("source_id", "")) for r in rows],
+                             "Description": [describe(r) for r in rows]},
+                            geometry=sources.geometry.values, crs=sources.crs).to_crs(4326)

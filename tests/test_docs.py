@@ -192,9 +192,10 @@ def test_every_source_row_key_is_documented():
 
 
 def test_outputs_lists_every_output_file():
+    from geosp.io.atomic import OUTPUT_NAMES
+
     text = _read("outputs.md")
-    for name in ("interpretation.gpkg", "sp_grid.tif", "sp_model.tif", "sp_residual.tif",
-                 "sp_distance.tif", "map.html", "report.html", "run.json", ".geosp/"):
+    for name in OUTPUT_NAMES + (".geosp/",):
         assert f"`{name}" in text, name
 
 

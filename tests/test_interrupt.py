@@ -34,8 +34,8 @@ pytestmark = pytest.mark.slow
 ROOT = Path(__file__).resolve().parents[1]
 # The fast options, but with the map and report on so the run has several outputs to write.
 OPTIONS = FAST.replace("map = false", "map = true").replace("report = false", "report = true")
-OUTPUTS = ("interpretation.gpkg", "sp_grid.tif", "sp_distance.tif", "sp_model.tif", "sp_residual.tif",
-           "map.html", "report.html", "run.json")
+OUTPUTS = ("interpretation.gpkg", "targets.csv", "sources.kml", "sp_grid.tif", "sp_distance.tif",
+           "sp_model.tif", "sp_residual.tif", "map.html", "report.html", "run.json")
 
 
 def digest(path):
@@ -69,6 +69,12 @@ def readable(path):
             src.read(1)
     elif name.endswith(".json"):
         json.loads(path.read_text(encoding="utf-8"))
+    elif name.endswith(".csv"):
+        import pandas as pd
+
+        assert list(pd.read_csv(path).columns)[:2] == ["source_id", "status"]
+    elif name.endswith(".kml"):
+        assert path.read_text(encoding="utf-8").rstrip().endswith("</kml>")
     elif name.endswith(".html"):
         assert path.read_text(encoding="utf-8").rstrip().endswith("</html>")
 

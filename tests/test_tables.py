@@ -160,3 +160,23 @@ def test_bad_geometry_row_is_rejected_with_id():
 def test_empty_inputs_give_empty_frames_with_columns():
     assert list(tables.sources_frame([], CRS).columns[:23]) == list(tables.SOURCE_FIELDS)
     assert len(tables.segments_frame([], CRS)) == 0
+
+
+def test_targets_table_has_wgs84_position_and_elevation_above_sea_level():
+    # Reference: pyproj for the position (an independent transform of the same point) and
+    # ground − depth for the elevation. Uncertain rows follow the targets; cultural ones are left out.
+    import pyproj
+
+    rows = [dict(patch_row(), source_id="U1", status="uncertain", ground_m=500.0),
+            dict(patch_row(), source_id="T1", status="target", ground_m=1200.0),
+            dict(source_id="C1", model="pole_pair", status="cultural", top_x=1000.0, top_y=2000.0,
+                 top_depth_m=5.0, neg_x=1030.0, neg_y=2040.0, neg_depth_m=7.0, pole_k_mv_m=250.0, flags=[])]
+    sources = tables.sources_frame(rows, CRS)
+    table = tables.targets_frame(sources)
+    assert list(table["source_id"]) == ["T1", "U1"]
+    assert list(table.columns) == list(tables.TARGET_COLUMNS)
+    target = next(r for r in rows if r["source_id"] == "T1")
+    lon, lat = pyproj.Transformer.from_crs(CRS, "EPSG:4326", always_xy=True).transform(target["top_x"],
+                                                                                      target["top_y"])
+    assert table.loc[0, "lon"] == pytest.approx(lon, abs=1e-7) and table.loc[0, "lat"] == pytest.approx(lat, abs=1e-7)
+    assert table.loc[0, "top_elevation_m"] == pytest.approx(1200.0 - target["top_depth_m"], abs=0.05)
