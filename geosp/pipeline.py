@@ -10,6 +10,7 @@ option and its default).
 from __future__ import annotations
 
 import inspect
+import math
 import logging
 import time
 import warnings
@@ -44,7 +45,7 @@ def _kwonly_defaults(func):
     return out
 
 
-def publish_options(*, title="", map=True, report=True, tiles="", tiles_attribution=""):
+def publish_options(*, title="", map=True, report=True, tiles="", tiles_attribution="", sp_range_mv="auto"):
     """
     Options of the [publish] section.
 
@@ -59,8 +60,14 @@ def publish_options(*, title="", map=True, report=True, tiles="", tiles_attribut
         Off by default so the map works offline.
     tiles_attribution : str
         Attribution text shown with the tiles.
+    sp_range_mv : float or "auto"
+        Half-range of the map's SP colour scale (mV): blue at −value, red at
+        +value. "auto" (default) takes the 98th percentile of |SP| rounded
+        up to a round number, which differs from run to run; give a number
+        (for example 150) to compare the maps of several runs or surveys.
     """
-    return dict(title=title, map=map, report=report, tiles=tiles, tiles_attribution=tiles_attribution)
+    return dict(title=title, map=map, report=report, tiles=tiles, tiles_attribution=tiles_attribution,
+                sp_range_mv=sp_range_mv)
 
 
 def stage_defaults():
@@ -456,6 +463,13 @@ def check_options(project):
     check_reduce_options(**_pick(project.stages["reduce"], reduce_survey))
     check_grid_options(**_pick(project.stages["grid"], grid_stations))
     check_detect_options(**_pick(project.stages["detect"], detect_sources))
+    sp_range = project.stages["publish"].get("sp_range_mv", "auto")
+    if sp_range != "auto" and not (isinstance(sp_range, (int, float)) and not isinstance(sp_range, bool)
+                                   and math.isfinite(sp_range) and sp_range > 0):
+        from .errors import OptionError
+
+        raise OptionError("[publish]", f"sp_range_mv = {sp_range!r} must be \"auto\" or a number of mV above 0.",
+                          "For example sp_range_mv = 150.")
     if "workers" in project.stages["detect"]:
         from .parallel import resolve_workers
 
@@ -625,7 +639,8 @@ def write_outputs(project, state, out, *, publish=False):
                                sources=layers.get("sources"), grid=rasters.get("sp_grid.tif"), title=title,
                                tiles=options.get("tiles") or None,
                                tiles_attribution=options.get("tiles_attribution", ""),
-                               cautions=interpretation.CAUTIONS)
+                               cautions=interpretation.CAUTIONS,
+                               sp_range_mv=options.get("sp_range_mv", "auto"))
             with atomic_path(out / "map.html") as tmp:
                 tmp.write_text(html, encoding="utf-8")
             written.append("map.html")

@@ -552,7 +552,7 @@ def _furniture(title, cautions, colour_bar, note):
 # --------------------------------------------------------------------------
 
 def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
-                tiles_attribution="", cautions=CAUTIONS):
+                tiles_attribution="", cautions=CAUTIONS, sp_range_mv="auto"):
     """
     Build the offline interactive map as one self-contained HTML document.
 
@@ -581,6 +581,9 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
         Attribution text for ``tiles`` (escaped).
     cautions : sequence of str
         Statements shown in the caution box. Default :data:`CAUTIONS`.
+    sp_range_mv : float or "auto"
+        Half-range of the SP colour scale (mV); "auto": the 98th percentile
+        of |SP| rounded up to a round number.
 
     Returns
     -------
@@ -603,7 +606,7 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
     from matplotlib import colormaps
 
     cmap = colormaps[_CMAP]
-    amplitude = _colour_scale(stations, grid)
+    amplitude = _colour_scale(stations, grid) if sp_range_mv == "auto" else float(sp_range_mv)
     n_stations = len(stations) if stations is not None else 0
     thinned_note = None
     if stations is not None:

@@ -342,3 +342,9 @@ def test_report_and_run_json_show_no_local_folders(tmp_path, capsys):
     for name in ("run.json", "report.html"):
         assert str(tmp_path) not in (out / name).read_text(encoding="utf-8"), name
     assert "stations.shp" in record["inputs"] and "dv.csv" in record["inputs"]
+
+
+def test_check_refuses_a_bad_colour_range(tmp_path, capsys):
+    project = write_survey(tmp_path / "s", "shp", extra_project="[publish]\nsp_range_mv = -5\n")
+    code, out, err = run(capsys, "check", project)
+    assert code == 2 and "sp_range_mv" in err

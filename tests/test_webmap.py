@@ -269,3 +269,13 @@ def test_map_has_a_legend_for_faults_and_sources(document):
     for text in ("fault segment with a source", "marginal: worth a second look", "no anomaly detected",
                  "uncertain source: not a target", "likely cultural"):
         assert text in legend
+
+
+def test_fixed_sp_range_makes_maps_comparable():
+    """With sp_range_mv the colour bar ends at ±that value whatever the data (auto follows the data)."""
+    inputs = make_inputs()
+    auto = make_webmap(**inputs)
+    fixed = make_webmap(**inputs, sp_range_mv=150)
+    bar = lambda doc: doc[doc.index('id="geosp-colourbar"'):doc.index('id="geosp-colourbar"') + 2500]  # noqa: E731
+    assert ">150<" in bar(fixed) and ">-150<" in bar(fixed)
+    assert ">150<" not in bar(auto)
