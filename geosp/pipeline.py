@@ -640,7 +640,7 @@ def write_outputs(project, state, out, *, publish=False):
                                tiles=options.get("tiles") or None,
                                tiles_attribution=options.get("tiles_attribution", ""),
                                cautions=interpretation.CAUTIONS,
-                               sp_range_mv=options.get("sp_range_mv", "auto"))
+                               sp_range_mv=options.get("sp_range_mv", "auto"), dem=state.survey.dem)
             with atomic_path(out / "map.html") as tmp:
                 tmp.write_text(html, encoding="utf-8")
             written.append("map.html")

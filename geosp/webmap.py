@@ -444,6 +444,60 @@ def _add_geojson(folium, group, frame, properties, *, style, marker=None, toolti
 
 def _grid_overlay(grid, cmap, amplitude):
     """RGBA image (uint8) of the grid in Web Mercator and its lat/lon bounds."""
+    destination, bounds = _to_web_mercator(grid)
+    rgba = cmap(0.5 + 0.5 * np.clip(np.nan_to_num(destination) / amplitude, -1, 1))
+    rgba[..., 3] = np.where(np.isfinite(destination), 1.0, 0.0)
+    return (rgba * 255).round().astype(np.uint8), bounds
+
+
+#: Sun for the relief shading: from the north-west, 45° above the horizon (the usual choice of
+#: cartographers, which makes relief read the right way round).
+SUN_AZIMUTH_DEG, SUN_ALTITUDE_DEG = 315.0, 45.0
+#: The shaded relief is at most this many cells on its longer side (the DEM is averaged down).
+RELIEF_MAX_CELLS = 1200
+
+
+def hillshade(values, d_north, d_east, *, azimuth_deg=SUN_AZIMUTH_DEG, altitude_deg=SUN_ALTITUDE_DEG):
+    """
+    Shaded relief (0 to 1) of an elevation grid whose row 0 is the southernmost.
+
+    The cosine of the angle between the surface normal and the direction of
+    the sun; 0 in the shadow. A flat surface gives sin(altitude).
+    """
+    dz_dn, dz_de = np.gradient(np.asarray(values, dtype=float), d_north, d_east)
+    az, alt = math.radians(azimuth_deg), math.radians(altitude_deg)
+    sun = np.array([math.sin(az) * math.cos(alt), math.cos(az) * math.cos(alt), math.sin(alt)])  # E, N, up
+    norm = np.sqrt(dz_de**2 + dz_dn**2 + 1.0)
+    return np.clip((-dz_de * sun[0] - dz_dn * sun[1] + sun[2]) / norm, 0.0, 1.0)
+
+
+def _relief_overlay(dem, bounds_xy):
+    """Grey RGBA image of the DEM's shaded relief around ``bounds_xy`` (working CRS), in Web Mercator."""
+    from .models import Raster
+
+    west, south, east, north = bounds_xy
+    pad = 0.1 * max(east - west, north - south, 1.0)
+    cols = np.flatnonzero((dem.easting >= west - pad) & (dem.easting <= east + pad))
+    rows = np.flatnonzero((dem.northing >= south - pad) & (dem.northing <= north + pad))
+    if cols.size < 3 or rows.size < 3:
+        return None
+    step = max(1, int(math.ceil(max(cols.size, rows.size) / RELIEF_MAX_CELLS)))
+    values = np.asarray(dem.values, dtype=float)[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+    n_r, n_c = (values.shape[0] // step) * step, (values.shape[1] // step) * step
+    values = values[:n_r, :n_c].reshape(n_r // step, step, n_c // step, step).mean(axis=(1, 3))
+    easting = dem.easting[cols[0]:cols[0] + n_c].reshape(-1, step).mean(axis=1)
+    northing = dem.northing[rows[0]:rows[0] + n_r].reshape(-1, step).mean(axis=1)
+    d_north, d_east = abs(northing[1] - northing[0]), abs(easting[1] - easting[0])
+    shade = hillshade(values, d_north, d_east)
+    shade[~np.isfinite(values)] = np.nan
+    destination, image_bounds = _to_web_mercator(Raster(easting, northing, shade, dem.crs, units=""))
+    grey = np.nan_to_num(destination, nan=0.0)
+    rgba = np.stack([grey, grey, grey, np.where(np.isfinite(destination), 1.0, 0.0)], axis=-1)
+    return (rgba * 255).round().astype(np.uint8), image_bounds
+
+
+def _to_web_mercator(grid):
+    """The grid's values reprojected to Web Mercator (north-up rows) and their lat/lon bounds."""
     import rasterio.transform
     import rasterio.warp
     from pyproj import Transformer
@@ -464,14 +518,11 @@ def _grid_overlay(grid, cmap, amplitude):
         band, destination, src_transform=src_transform, src_crs=grid.crs,
         src_nodata=np.nan, dst_transform=dst_transform, dst_crs="EPSG:3857",
         dst_nodata=np.nan, resampling=Resampling.bilinear)
-    rgba = cmap(0.5 + 0.5 * np.clip(np.nan_to_num(destination) / amplitude, -1, 1))
-    rgba[..., 3] = np.where(np.isfinite(destination), 1.0, 0.0)
-    image = (rgba * 255).round().astype(np.uint8)
     left, bottom, right, top = rasterio.transform.array_bounds(height, width, dst_transform)
     to_wgs = Transformer.from_crs("EPSG:3857", "EPSG:4326", always_xy=True)
     lon0, lat0 = to_wgs.transform(left, bottom)
     lon1, lat1 = to_wgs.transform(right, top)
-    return image, [[lat0, lon0], [lat1, lon1]]
+    return destination, [[lat0, lon0], [lat1, lon1]]
 
 
 def _png_uri(image):
@@ -552,7 +603,7 @@ def _furniture(title, cautions, colour_bar, note):
 # --------------------------------------------------------------------------
 
 def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
-                tiles_attribution="", cautions=CAUTIONS, sp_range_mv="auto"):
+                tiles_attribution="", cautions=CAUTIONS, sp_range_mv="auto", dem=None):
     """
     Build the offline interactive map as one self-contained HTML document.
 
@@ -584,6 +635,9 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
     sp_range_mv : float or "auto"
         Half-range of the SP colour scale (mV); "auto": the 98th percentile
         of |SP| rounded up to a round number.
+    dem : Raster or None
+        Elevations (m, working CRS): drawn as an offline shaded relief
+        under the SP grid, over the survey area (:func:`hillshade`).
 
     Returns
     -------
@@ -650,6 +704,13 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
         folium.TileLayer(tiles=tiles, attr=_text(tiles_attribution) or "Basemap (user tiles)",
                          name="Basemap", overlay=False, control=True).add_to(fmap)
 
+    if dem is not None and stations is not None and len(stations):
+        relief = _relief_overlay(dem, stations.total_bounds)
+        if relief is not None:
+            folium.raster_layers.ImageOverlay(
+                image=_png_uri(relief[0]), bounds=relief[1], opacity=1.0,
+                name="Relief (shaded from the DEM)", interactive=False, cross_origin=False, zindex=0,
+            ).add_to(fmap)
     if overlay is not None:
         folium.raster_layers.ImageOverlay(
             image=_png_uri(overlay[0]), bounds=overlay[1], opacity=_GRID_OPACITY,

@@ -279,3 +279,29 @@ def test_fixed_sp_range_makes_maps_comparable():
     bar = lambda doc: doc[doc.index('id="geosp-colourbar"'):doc.index('id="geosp-colourbar"') + 2500]  # noqa: E731
     assert ">150<" in bar(fixed) and ">-150<" in bar(fixed)
     assert ">150<" not in bar(auto)
+
+
+def test_hillshade_lights_slopes_facing_the_sun():
+    # Reference: Lambert's cosine law with the sun from the north-west, 45° up (the usual
+    # cartographic choice). Flat ground: sin 45°. A 45° slope facing the sun squarely: 1.
+    # The opposite slope: in the shadow, 0.
+    from geosp.webmap import hillshade
+
+    east, north = np.meshgrid(np.arange(50.0), np.arange(40.0))  # 1 m cells, row 0 south
+    flat = hillshade(np.zeros_like(east), 1.0, 1.0)
+    assert np.allclose(flat, np.sqrt(0.5))
+    facing = -(north - east) / np.sqrt(2.0)  # falls toward the north-west by 1 m per m
+    assert np.allclose(hillshade(facing, 1.0, 1.0), 1.0)
+    assert np.allclose(hillshade(-facing, 1.0, 1.0), 0.0)
+
+
+def test_map_draws_the_relief_when_given_a_dem():
+    inputs = make_inputs()
+    e = 500000.0 + np.arange(-100.0, 600.0, 10.0)
+    n = 4000000.0 + np.arange(-100.0, 600.0, 10.0)
+    ee, nn = np.meshgrid(e, n)
+    dem = Raster(e, n, 300.0 + 0.1 * (ee - 500000.0) + 20.0 * np.sin(nn / 80.0), CRS, units="m")
+    document = make_webmap(**inputs, dem=dem)
+    assert "Relief (shaded from the DEM)" in document
+    assert "Relief (shaded" not in make_webmap(**inputs)
+    check_offline(document)
