@@ -138,13 +138,17 @@ def _progress_factory(quiet):
     def make(label):
         bar = {}
 
-        def update(done, total):
+        def update(done, total, note=None):
             if "bar" not in bar:
-                bar["bar"] = tqdm(total=total, desc=label, unit="seg", file=sys.stderr, leave=False)
+                bar["bar"] = tqdm(total=total, desc=label, unit="step", file=sys.stderr, leave=False,
+                                  bar_format="{desc}: {n_fmt} steps, {elapsed} {postfix}" if total is None
+                                  else None)
             b = bar["bar"]
             b.n = done
+            if note:
+                b.set_postfix_str(note, refresh=False)
             b.refresh()
-            if done >= total:
+            if total is not None and done >= total:
                 b.close()
 
         return update

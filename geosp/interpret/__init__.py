@@ -93,6 +93,8 @@ def detect_sources(stations, segments, *, network=None, estimate_terrain=True, f
         Address of a Dask scheduler (``tcp://HOST:PORT``) to run that work
         on instead. Default None.
     progress : callable or None
+        ``progress(done, total[, note])``: milestones of the survey model
+        (total None until the end), or blocks done for a survey in blocks.
 
     Returns
     -------

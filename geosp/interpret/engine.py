@@ -234,6 +234,8 @@ def select_sources(stations, segments, *, network=None, false_alarm_rate=0.05, n
         Where the fits from several starts run (see
         :func:`geosp.parallel.map_segments`).
     progress : callable or None
+        Called as ``progress(step, total, note)`` at each milestone (``total``
+        None until the last call, where it equals ``step``).
 
     Returns
     -------
@@ -264,11 +266,21 @@ def select_sources(stations, segments, *, network=None, false_alarm_rate=0.05, n
     # holds the sources (so it errs toward more correlated noise, and fewer
     # detections); later rounds fit the residuals of the model with its
     # sources, find more, and drop what no longer passes.
+    steps = [0]
+
+    def report(note, *, last=False):
+        """Progress: a step count with what is happening (the total is known only at the end)."""
+        if progress is not None:
+            steps[0] += 1
+            progress(steps[0], steps[0] if last else None, note)
+
     noise = _first_noise(survey)
+    report("first noise model fitted")
     sources, history = [], []
     for round_ in range(MAX_ROUNDS):
         state = _State(survey, noise, columns)
         null = _null(context, state, sources)
+        report(f"round {round_ + 1}: threshold {null['threshold']:.2f}, {len(sources)} sources")
         history.append(f"round {round_ + 1}: noise {noise.describe()}; threshold {null['threshold']:.2f}")
         sources = _validate(context, state, sources, null["threshold"], history)
         rejected = set()
@@ -283,8 +295,7 @@ def select_sources(stations, segments, *, network=None, false_alarm_rate=0.05, n
                 rejected.add(scan["best"])
                 continue
             sources = sources + [new]
-            if progress is not None:
-                progress(len(sources), len(sources) + 1)
+            report(f"round {round_ + 1}: {len(sources)} sources")
         residual = _residual(survey, state, sources)
         updated = estimate_noise(survey.x, survey.y, residual, survey.w, spacing=survey.spacing,
                                  line_spacing=survey.line_spacing, network=survey.network)
@@ -296,6 +307,7 @@ def select_sources(stations, segments, *, network=None, false_alarm_rate=0.05, n
     null = _null(context, state, sources)
     sources = _validate(context, state, sources, null["threshold"], history)
     _refine_all(context, state, sources)
+    report(f"{len(sources)} sources", last=True)
     final = _scan(context, state, sources, null, exclude=set())
     design = np.hstack([state.Bw] + [state.white(s.column)[:, None] for s in sources])
     coef, cov, chi2 = solve(design, state.dw)

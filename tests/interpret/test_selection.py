@@ -70,8 +70,13 @@ def test_linear_part_is_dense_generalised_least_squares():
     planted = [patch(E0 + 1500.0, N0 + 900.0, jump_mv=120.0)]
     stations, segments, _ = build_survey(sources=planted, white=2.5, correlated=1.5, length=250.0,
                                          seed=8, n_lines=9, line_spacing=200.0, weights=_uneven)
-    selection, _ = detect_sources(stations, segments, **FAST)
+    calls = []
+    selection, _ = detect_sources(stations, segments, progress=lambda *a: calls.append(a), **FAST)
     assert selection.sources
+    # Progress milestones: numbered steps with a note, the total known (and reached) only at the end.
+    assert [c[0] for c in calls] == list(range(1, len(calls) + 1))
+    assert all(c[1] is None for c in calls[:-1]) and calls[-1][1] == calls[-1][0]
+    assert calls[-1][2] == f"{len(selection.sources)} sources"
     i = selection.valid_index
     x, y, e = stations.easting[i], stations.northing[i], stations.upward[i]
     design = np.column_stack([nuisance_columns(x, y, e, selection.frame)] + [s.column for s in selection.sources])
