@@ -419,21 +419,37 @@ def thin_stations(frame, limit=MAP_MAX_STATIONS):
     return frame.iloc[keep], note
 
 
-def _add_geojson(folium, group, frame, properties, *, style, marker=None, tooltip_field=None):
+#: Popups pan clear of the title box (top left) and the layer list (top right).
+_POPUP_PADDING = {"autoPanPaddingTopLeft": [70, 60], "autoPanPaddingBottomRight": [20, 20]}
+
+
+def _add_geojson(folium, group, frame, properties, *, style, marker=None, tooltip_field=None,
+                 click_width=None):
     collection = _feature_collection(frame, properties)
     if not collection["features"]:
         return
     fields = [k for k in properties[0] if not k.startswith("_")]
+
+    def popup():
+        return folium.GeoJsonPopup(fields=fields, aliases=fields, labels=True, **_POPUP_PADDING)
+
+    def tooltip():
+        return folium.GeoJsonTooltip(fields=[tooltip_field], labels=False) if tooltip_field else None
+
+    if click_width:
+        # An invisible wide copy underneath, so that a dashed line can be clicked in its gaps too.
+        folium.GeoJson(collection, style_function=lambda f: {"weight": click_width, "opacity": 0.0},
+                       highlight_function=None, popup=popup(), tooltip=tooltip()).add_to(group)
     kwargs = {}
     if marker is not None:
         kwargs["marker"] = marker
     if tooltip_field:
-        kwargs["tooltip"] = folium.GeoJsonTooltip(fields=[tooltip_field], labels=False)
+        kwargs["tooltip"] = tooltip()
     folium.GeoJson(
         collection,
         style_function=style,
         highlight_function=None,
-        popup=folium.GeoJsonPopup(fields=fields, aliases=fields, labels=True),
+        popup=popup(),
         **kwargs,
     ).add_to(group)
 
@@ -736,7 +752,7 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
     frame = layers["segments"]
     if frame is not None and len(frame):
         props = [_segment_properties(r) for r in frame.to_dict("records")]
-        _add_geojson(folium, groups["segments"], frame, props, tooltip_field="Segment",
+        _add_geojson(folium, groups["segments"], frame, props, tooltip_field="Segment", click_width=14,
                      style=lambda f: {"color": f["properties"]["_colour"],
                                       "weight": f["properties"]["_weight"],
                                       "dashArray": f["properties"]["_dash"], "opacity": 0.95})

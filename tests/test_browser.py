@@ -159,9 +159,10 @@ def test_map_renders_offline_with_expected_features(browser, pages):
     assert record["errors"] == []
     assert counts["maps"] == 1
     assert counts["circles"] == N_SIDE * N_SIDE
-    assert counts["lines"] == 2 and counts["polygons"] == 1 and counts["images"] == 1
-    # One SVG path per vector feature (25 stations + 2 segments + 1 footprint).
-    assert counts["svgPaths"] == N_SIDE * N_SIDE + 3
+    # Each segment is drawn twice: its styled line and an invisible wider copy to click on.
+    assert counts["lines"] == 4 and counts["polygons"] == 1 and counts["images"] == 1
+    # One SVG path per vector feature (25 stations + 2 x 2 segment lines + 1 footprint).
+    assert counts["svgPaths"] == N_SIDE * N_SIDE + 5
     assert counts["overlays"] == 4 and counts["scale"] == 1
     text = page.inner_text("#geosp-cautions")
     for caution in CAUTIONS:
