@@ -735,7 +735,7 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
 
     groups = {}
     for key, label in (("sources", "Source footprints (models)"),
-                       ("segments", "Fault segments (detection score)"),
+                       ("segments", "Fault segments (detection)"),
                        ("stations", "Stations (SP)")):
         show = key != "stations" or n_stations <= MAP_STATIONS_SHOWN
         groups[key] = folium.FeatureGroup(name=label, show=show).add_to(fmap)

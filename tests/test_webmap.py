@@ -78,7 +78,7 @@ def test_hostile_values_are_escaped_everywhere(document):
 
 
 def test_map_has_layers_cautions_scale_and_colour_bar(document):
-    for label in ("SP grid (mV)", "Stations (SP)", "Fault segments (detection score)",
+    for label in ("SP grid (mV)", "Stations (SP)", "Fault segments (detection)",
                   "Source footprints (models)"):
         assert label in document
     for caution in CAUTIONS:
