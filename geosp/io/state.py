@@ -388,7 +388,7 @@ def read_state(out, *, version, keys, stages):
         tree = json.loads(blobs[_TREE])
         decoder = _Decoder(arrays)
         products = {stage: decoder.decode(tree["stages"][stage]) for stage in usable}
-    except (OSError, ValueError, KeyError, TypeError) as err:
+    except Exception as err:  # a cache that cannot be read is run again, whatever the reason
         return {}, f"it cannot be read ({type(err).__name__}: {err})"
     note = None
     if len(usable) < len(stages):
