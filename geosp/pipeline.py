@@ -644,6 +644,17 @@ def write_outputs(project, state, out, *, publish=False):
             with atomic_path(out / "map.html") as tmp:
                 tmp.write_text(html, encoding="utf-8")
             written.append("map.html")
+            from .figures.printable import printable_map
+            from .webmap import colour_range
+
+            figure = printable_map(rasters.get("sp_grid.tif"), layers.get("fault_segments"), layers.get("sources"),
+                                   title=title, cautions=interpretation.CAUTIONS,
+                                   amplitude=colour_range(layers["stations"], rasters.get("sp_grid.tif"),
+                                                          options.get("sp_range_mv", "auto")),
+                                   note=f"Coordinates in {crs}. geosp {__version__}.")
+            with atomic_path(out / "map.pdf") as tmp:
+                figure.savefig(tmp, format="pdf", dpi=200)
+            written.append("map.pdf")
         if options.get("report", True):
             from .report import make_report
 

@@ -196,6 +196,11 @@ def _with_range(row, key, lo_key, hi_key, digits=1):
     return f"{centre} ({lo} to {hi})"
 
 
+def colour_range(stations, grid, sp_range_mv="auto"):
+    """Half-range (mV) of the SP colour scale: ``sp_range_mv``, or from the data when "auto"."""
+    return _colour_scale(stations, grid) if sp_range_mv == "auto" else float(sp_range_mv)
+
+
 def _colour_scale(stations, grid):
     values = []
     if stations is not None and len(stations) and "sp_mv" in stations:
@@ -676,7 +681,7 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
     from matplotlib import colormaps
 
     cmap = colormaps[_CMAP]
-    amplitude = _colour_scale(stations, grid) if sp_range_mv == "auto" else float(sp_range_mv)
+    amplitude = colour_range(stations, grid, sp_range_mv)
     n_stations = len(stations) if stations is not None else 0
     thinned_note = None
     if stations is not None:

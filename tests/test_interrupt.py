@@ -35,7 +35,7 @@ ROOT = Path(__file__).resolve().parents[1]
 # The fast options, but with the map and report on so the run has several outputs to write.
 OPTIONS = FAST.replace("map = false", "map = true").replace("report = false", "report = true")
 OUTPUTS = ("interpretation.gpkg", "targets.csv", "sources.kml", "sp_grid.tif", "sp_distance.tif",
-           "sp_model.tif", "sp_residual.tif", "map.html", "report.html", "run.json")
+           "sp_model.tif", "sp_residual.tif", "map.html", "map.pdf", "report.html", "run.json")
 
 
 def digest(path):
@@ -73,6 +73,9 @@ def readable(path):
         import pandas as pd
 
         assert list(pd.read_csv(path).columns)[:2] == ["source_id", "status"]
+    elif name.endswith(".pdf"):
+        data = path.read_bytes()
+        assert data.startswith(b"%PDF") and data.rstrip().endswith(b"%%EOF")
     elif name.endswith(".kml"):
         assert path.read_text(encoding="utf-8").rstrip().endswith("</kml>")
     elif name.endswith(".html"):

@@ -305,3 +305,23 @@ def test_map_draws_the_relief_when_given_a_dem():
     assert "Relief (shaded from the DEM)" in document
     assert "Relief (shaded" not in make_webmap(**inputs)
     check_offline(document)
+
+
+def test_printable_map_has_the_grid_decisions_outlines_and_cautions():
+    import io
+
+    from geosp.figures.printable import printable_map
+
+    inputs = make_inputs()
+    fig = printable_map(inputs["grid"], inputs["segments"], inputs["sources"], title="T",
+                        cautions=CAUTIONS, amplitude=40.0, note="Coordinates in EPSG:32633.")
+    ax = fig.axes[0]
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert "fault segment with a source" in labels and "uncertain source: not a target" in labels
+    image = ax.get_images()[0]
+    assert image.norm.vmin == -40.0 and image.norm.vmax == 40.0  # the web map's colour range
+    text = " ".join(t.get_text() for t in fig.texts)
+    assert all(c in text for c in CAUTIONS)
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="pdf")
+    assert buffer.getvalue().startswith(b"%PDF")

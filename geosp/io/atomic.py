@@ -26,7 +26,7 @@ __all__ = ["OUTPUT_NAMES", "atomic_path", "ensure_not_input", "output_set"]
 
 #: File names geosp writes in an output folder (contract).
 OUTPUT_NAMES = ("interpretation.gpkg", "targets.csv", "sources.kml", "sp_grid.tif", "sp_distance.tif",
-                "sp_model.tif", "sp_residual.tif", "map.html", "report.html", "run.json")
+                "sp_model.tif", "sp_residual.tif", "map.html", "map.pdf", "report.html", "run.json")
 
 # Side files SQLite or GDAL may leave beside a temporary file.
 _SIDECARS = ("-journal", "-wal", "-shm", ".aux.xml")
