@@ -492,22 +492,58 @@ def hillshade(values, d_north, d_east, *, azimuth_deg=SUN_AZIMUTH_DEG, altitude_
     return np.clip((-dz_de * sun[0] - dz_dn * sun[1] + sun[2]) / norm, 0.0, 1.0)
 
 
-def _relief_overlay(dem, bounds_xy):
-    """Grey RGBA image of the DEM's shaded relief around ``bounds_xy`` (working CRS), in Web Mercator."""
-    from .models import Raster
-
+def _dem_window(dem, bounds_xy, max_cells=RELIEF_MAX_CELLS):
+    """The DEM around ``bounds_xy`` (10 % margin), averaged down to ``max_cells`` on its longer side."""
     west, south, east, north = bounds_xy
     pad = 0.1 * max(east - west, north - south, 1.0)
     cols = np.flatnonzero((dem.easting >= west - pad) & (dem.easting <= east + pad))
     rows = np.flatnonzero((dem.northing >= south - pad) & (dem.northing <= north + pad))
     if cols.size < 3 or rows.size < 3:
         return None
-    step = max(1, int(math.ceil(max(cols.size, rows.size) / RELIEF_MAX_CELLS)))
+    step = max(1, int(math.ceil(max(cols.size, rows.size) / max_cells)))
     values = np.asarray(dem.values, dtype=float)[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
     n_r, n_c = (values.shape[0] // step) * step, (values.shape[1] // step) * step
     values = values[:n_r, :n_c].reshape(n_r // step, step, n_c // step, step).mean(axis=(1, 3))
     easting = dem.easting[cols[0]:cols[0] + n_c].reshape(-1, step).mean(axis=1)
     northing = dem.northing[rows[0]:rows[0] + n_r].reshape(-1, step).mean(axis=1)
+    return easting, northing, values
+
+
+def _contours(dem, bounds_xy, crs):
+    """Elevation contours around ``bounds_xy`` at a round interval (about ten levels), in WGS 84."""
+    from matplotlib.figure import Figure
+    from pyproj import Transformer
+
+    window = _dem_window(dem, bounds_xy, max_cells=400)
+    if window is None:
+        return [], None
+    easting, northing, values = window
+    finite = values[np.isfinite(values)]
+    if finite.size < 4 or np.ptp(finite) <= 0:
+        return [], None
+    interval = _nice_ceiling(np.ptp(finite) / 10.0)
+    levels = np.arange(np.ceil(finite.min() / interval), np.floor(finite.max() / interval) + 1) * interval
+    if levels.size == 0:
+        return [], None
+    contour_set = Figure().add_subplot().contour(easting, northing, np.ma.masked_invalid(values), levels=levels)
+    to_wgs = Transformer.from_crs(crs, "EPSG:4326", always_xy=True)
+    lines = []
+    for level, segments in zip(contour_set.levels, contour_set.allsegs):
+        for seg in segments:
+            if len(seg) >= 2:
+                lon, lat = to_wgs.transform(seg[:, 0], seg[:, 1])
+                lines.append((float(level), np.column_stack([lat, lon]).tolist()))
+    return lines, interval
+
+
+def _relief_overlay(dem, bounds_xy):
+    """Grey RGBA image of the DEM's shaded relief around ``bounds_xy`` (working CRS), in Web Mercator."""
+    from .models import Raster
+
+    window = _dem_window(dem, bounds_xy)
+    if window is None:
+        return None
+    easting, northing, values = window
     d_north, d_east = abs(northing[1] - northing[0]), abs(easting[1] - easting[0])
     shade = hillshade(values, d_north, d_east)
     shade[~np.isfinite(values)] = np.nan
@@ -732,6 +768,12 @@ def make_webmap(*, stations, segments, sources, grid=None, title="", tiles=None,
                 image=_png_uri(relief[0]), bounds=relief[1], opacity=1.0,
                 name="Relief (shaded from the DEM)", interactive=False, cross_origin=False, zindex=0,
             ).add_to(fmap)
+        lines, interval = _contours(dem, stations.total_bounds, dem.crs)
+        if lines:
+            group = folium.FeatureGroup(name=f"Elevation contours ({interval:g} m)", show=False).add_to(fmap)
+            for level, coords in lines:
+                folium.PolyLine(coords, color="#5a3d1e", weight=1, opacity=0.7,
+                                tooltip=f"{level:g} m above sea level").add_to(group)
     if overlay is not None:
         folium.raster_layers.ImageOverlay(
             image=_png_uri(overlay[0]), bounds=overlay[1], opacity=_GRID_OPACITY,

@@ -303,6 +303,9 @@ def test_map_draws_the_relief_when_given_a_dem():
     dem = Raster(e, n, 300.0 + 0.1 * (ee - 500000.0) + 20.0 * np.sin(nn / 80.0), CRS, units="m")
     document = make_webmap(**inputs, dem=dem)
     assert "Relief (shaded from the DEM)" in document
+    # Over the stations (plus a 10 % margin) the DEM spans under 100 m: contours every 10 m (a round
+    # interval giving about ten levels), off by default.
+    assert "Elevation contours (10 m)" in document and "m above sea level" in document
     assert "Relief (shaded" not in make_webmap(**inputs)
     check_offline(document)
 
