@@ -721,7 +721,8 @@ def _unchecked_readings(first, obs, var, line, window, flag):
     A reading outside every loop (no redundancy: a line end beyond its last
     tie) cannot be tested by loop closure, yet a blunder there shifts every
     station beyond it. When it stands out from its neighbours along the line
-    by more than ``_READING_OUTLIER_Z`` robust standard deviations, its
+    by more than ``_READING_OUTLIER_Z`` robust standard deviations and the
+    potentials beyond it stay shifted by as much (a step, not a spike), its
     variance grows by the square of that departure, so the stations beyond
     carry the doubt in their ``sigma_mv`` and in the network covariance the
     fits use; the leg is flagged "unchecked". ``var`` and ``flag`` are
