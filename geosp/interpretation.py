@@ -276,6 +276,11 @@ def _source_text(row):
     return lines
 
 
+#: The report draws the profiles of at most this many segments with sources, at this resolution.
+MAX_PROFILE_FIGURES = 12
+PROFILE_DPI = 80
+
+
 def report_content(state, *, title, share=str):
     """
     The report's sections, figures and tables (arguments of :func:`geosp.report.make_report`).
@@ -415,13 +420,23 @@ def report_content(state, *, title, share=str):
                if state.reduction is not None and state.reduction.network.get("station_covariance") is not None
                else [])})
         by_segment = {f.segment.segment_id: f for f in state.fits.fits}
+        # One profile figure per segment (sources on one segment share it), for the segments of the
+        # targets first, then of uncertain and cultural sources, at most MAX_PROFILE_FIGURES: the
+        # report stays a file one can send (the map and the GeoPackage hold every source).
+        rank = {"target": 0, "uncertain": 1}
+        ordered = sorted(state.fits.sources, key=lambda r: rank.get(str(r.get("status")), 2))
+        drawn = list(dict.fromkeys(r["segment_id"] for r in ordered if r["segment_id"] in by_segment))
+        drawn = set(drawn[:MAX_PROFILE_FIGURES])
+        n_skipped = len({r["segment_id"] for r in state.fits.sources if r["segment_id"] in by_segment} - drawn)
         for row in state.fits.sources:
             fit = by_segment.get(row["segment_id"])
             names, tnames = [], []
-            if fit_figures is not None and fit is not None:
-                label = f"{row['source_id']}: observed and modelled SP across the fault"
-                figures[label] = fit_figures.profiles_figure(fit, st)
-                names.append(label)
+            if fit_figures is not None and fit is not None and row["segment_id"] in drawn:
+                label = f"{row['segment_id']}: observed and modelled SP across the fault"
+                if label not in figures:  # shown with the segment's first source only
+                    figures[label] = fit_figures.profiles_figure(fit, st)
+                    figures[label].geosp_dpi = PROFILE_DPI
+                    names.append(label)
             tables[f"{row['source_id']}: parameters"] = source_parameter_table(row)
             tnames.append(f"{row['source_id']}: parameters")
             if fit is not None and isinstance(fit.selection, pd.DataFrame):
@@ -429,6 +444,11 @@ def report_content(state, *, title, share=str):
                 tnames.append(f"{row['source_id']}: model selection")
             sections.append({"heading": f"Source {row['source_id']}", "level": 3, "text": _source_text(row),
                              "figures": names, "tables": tnames})
+        if n_skipped:
+            sections.append({"heading": "Other profiles", "level": 3, "text": [
+                f"Profile figures of {n_skipped} more segments with sources are left out to keep the report "
+                f"small (at most {MAX_PROFILE_FIGURES}, targets first); their parameters are above, and every "
+                "source is in the map, the GeoPackage and targets.csv."]})
         if not state.fits.sources:
             sections.append({"heading": "No sources", "level": 3,
                              "text": ["No anomaly cleared the false-alarm threshold; no source is reported."]})

@@ -131,7 +131,8 @@ def _key_value_html(mapping):
 
 def _figure_html(name, figure, *, dpi=110):
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=dpi, bbox_inches="tight")
+    # A figure may ask for its own resolution (geosp_dpi), e.g. the many per-source profiles.
+    figure.savefig(buffer, format="png", dpi=getattr(figure, "geosp_dpi", dpi), bbox_inches="tight")
     data = base64.b64encode(buffer.getvalue()).decode("ascii")
     return (f'<figure><img alt="{_text(name)}" src="data:image/png;base64,{data}">'
             f"<figcaption>{_text(name)}</figcaption></figure>")

@@ -76,3 +76,20 @@ def test_planted_patches_recovered(demo_run, planted):
     row = compare_sources(state.fits.sources).set_index("planted").loc[planted]
     assert row["found"], planted
     assert row["within_tolerance"], row[["top_depth_m", "top_depth_true_m", "geo_mean_m", "geo_mean_true_m"]]
+
+
+def test_report_draws_each_segment_profile_once_and_at_most_the_cap(demo_run, monkeypatch):
+    # On the demo three sources share segment F-East-01: its profile figure is drawn once. With
+    # the cap at 2, two profiles are drawn (the targets' segments first) and the rest is said.
+    from geosp import interpretation
+
+    _, state = demo_run
+    content = interpretation.report_content(state, title="demo")
+    profiles = [n for n in content["figures"] if n.endswith("across the fault")]
+    assert len(profiles) == len(set(profiles)) == len({r["segment_id"] for r in state.fits.sources})
+    monkeypatch.setattr(interpretation, "MAX_PROFILE_FIGURES", 2)
+    content = interpretation.report_content(state, title="demo")
+    profiles = [n for n in content["figures"] if n.endswith("across the fault")]
+    targets = {r["segment_id"] for r in state.fits.sources if r["status"] == "target"}
+    assert len(profiles) == 2 and {p.split(":")[0] for p in profiles} <= targets
+    assert any(s["heading"] == "Other profiles" for s in content["sections"])

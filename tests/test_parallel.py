@@ -135,6 +135,20 @@ def test_blocked_survey_model_is_identical_across_executors(monkeypatch):
 
     serial = run(workers=1)
     assert sorted(r["fault_id"] for r in serial.fits.sources) == ["FA", "FB"]
+    # The blocked survey model also goes through the stage cache unchanged (geosp.io.state).
+    import tempfile
+
+    from geosp.io import state as cache
+
+    selection, detections = detect_sources(stations, segments, **options, workers=1)
+    with tempfile.TemporaryDirectory() as folder:
+        monkeypatch.setattr(cache, "user_cache_dir", lambda: Path(folder))
+        products = {"detect": {"selection": selection, "detections": detections, "warnings": []}}
+        cache.write_state(Path(folder) / "out", version="v", keys={"detect": "k"}, products=products)
+        back, note = cache.read_state(Path(folder) / "out", version="v", keys={"detect": "k"}, stages=["detect"])
+    assert note is None
+    again = fit_sources(back["detect"]["selection"], stations, back["detect"]["detections"])
+    _assert_same_rows(serial.fits.sources, again.fits.sources)
     pooled = run(workers=2)
     _assert_same_rows(serial.fits.sources, pooled.fits.sources)
     npt.assert_array_equal(serial.fits.model_mv, pooled.fits.model_mv)

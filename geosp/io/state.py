@@ -55,6 +55,9 @@ ALLOWED = {
         "FaultSegment", "Detection", "SegmentFit", "FitResult")
 } | {
     ("geosp._network", "NetworkCovariance"),
+    ("geosp.interpret", "Blocked"),
+    ("geosp.interpret", "Interpretation"),
+    ("geosp.interpret.blocks", "Block"),
     ("geosp.interpret.engine", "Source"),
     ("geosp.interpret.engine", "Selection"),
     ("geosp.interpret.candidates", "Window"),
