@@ -633,24 +633,24 @@ def write_outputs(project, state, out, *, publish=False):
         options = project.stages["publish"]
         title = options.get("title") or state.survey.name
         if options.get("map", True):
-            from .webmap import make_webmap
+            from .figures.printable import printable_map
+            from .webmap import colour_range, make_webmap
+
+            # One colour range for the web map and the printable one.
+            amplitude = colour_range(layers["stations"], rasters.get("sp_grid.tif"),
+                                     options.get("sp_range_mv", "auto"))
 
             html = make_webmap(stations=layers["stations"], segments=layers.get("fault_segments"),
                                sources=layers.get("sources"), grid=rasters.get("sp_grid.tif"), title=title,
                                tiles=options.get("tiles") or None,
                                tiles_attribution=options.get("tiles_attribution", ""),
                                cautions=interpretation.CAUTIONS,
-                               sp_range_mv=options.get("sp_range_mv", "auto"), dem=state.survey.dem)
+                               sp_range_mv=amplitude, dem=state.survey.dem)
             with atomic_path(out / "map.html") as tmp:
                 tmp.write_text(html, encoding="utf-8")
             written.append("map.html")
-            from .figures.printable import printable_map
-            from .webmap import colour_range
-
             figure = printable_map(rasters.get("sp_grid.tif"), layers.get("fault_segments"), layers.get("sources"),
-                                   title=title, cautions=interpretation.CAUTIONS,
-                                   amplitude=colour_range(layers["stations"], rasters.get("sp_grid.tif"),
-                                                          options.get("sp_range_mv", "auto")),
+                                   title=title, cautions=interpretation.CAUTIONS, amplitude=amplitude,
                                    note=f"Coordinates in {crs}. geosp {__version__}.")
             with atomic_path(out / "map.pdf") as tmp:
                 figure.savefig(tmp, format="pdf", dpi=200)

@@ -481,8 +481,8 @@ def targets_frame(sources):
     frame = pd.DataFrame(sources.drop(columns="geometry", errors="ignore"))
     frame = frame[frame["model"] == "fault_patch"].copy()
     order = {"target": 0, "uncertain": 1}
-    frame = frame[frame.get("status", "target").isin(order)] if "status" in frame else frame
-    frame = frame.sort_values("status", key=lambda s: s.map(order), kind="stable") if "status" in frame else frame
+    if "status" in frame:
+        frame = frame[frame["status"].isin(order)].sort_values("status", key=lambda s: s.map(order), kind="stable")
     if len(frame) and sources.crs is not None:
         to_wgs84 = pyproj.Transformer.from_crs(sources.crs, "EPSG:4326", always_xy=True)
         frame["lon"], frame["lat"] = to_wgs84.transform(frame["top_x"].to_numpy(), frame["top_y"].to_numpy())

@@ -205,13 +205,8 @@ def test_leapfrog_offsets_alternate_and_cancel():
     assert np.abs(red.stations.drift_mv).max() < 3.0
 
 
-def dense_centred_rms(survey, reading_sigma):
-    """Expected RMS of the reduced potentials about their mean, from the dense covariance.
-
-    Independent of geosp: builds the incidence matrix of the readings, Q = sigma^2 (A'A)^-1
-    with the reference column removed, and returns sqrt(trace(C Q C) / n) with C the
-    centring matrix (errors "up to the reference constant").
-    """
+def _incidence(survey):
+    """Incidence matrix of the readings (−1 at from, +1 at to), reference column removed; and the reference."""
     ids = list(survey.stations.station_id)
     pos = {s: i for i, s in enumerate(ids)}
     rd = survey.readings
@@ -220,7 +215,18 @@ def dense_centred_rms(survey, reading_sigma):
     a[np.arange(m), [pos[s] for s in rd.from_id]] = -1
     a[np.arange(m), [pos[s] for s in rd.to_id]] = 1
     ref = pos[survey.reference_station]
-    a = np.delete(a, ref, axis=1)
+    return np.delete(a, ref, axis=1), ref
+
+
+def dense_centred_rms(survey, reading_sigma):
+    """Expected RMS of the reduced potentials about their mean, from the dense covariance.
+
+    Independent of geosp: builds the incidence matrix of the readings, Q = sigma^2 (A'A)^-1
+    with the reference column removed, and returns sqrt(trace(C Q C) / n) with C the
+    centring matrix (errors "up to the reference constant").
+    """
+    a, ref = _incidence(survey)
+    n = a.shape[1] + 1
     q = np.zeros((n, n))
     keep = np.delete(np.arange(n), ref)
     q[np.ix_(keep, keep)] = reading_sigma**2 * np.linalg.inv(a.T @ a)
@@ -598,16 +604,10 @@ def test_station_without_readings_is_flagged_not_given_a_value():
 
 
 def _dense_adjustment(survey, reading_sigma):
-    """Least squares of the readings by numpy alone: (potentials, posterior variances, chi2, dof)."""
-    ids = list(survey.stations.station_id)
-    pos = {s: i for i, s in enumerate(ids)}
+    """Least squares of the readings by numpy alone: (posterior variances, chi2, dof)."""
+    a, ref = _incidence(survey)
     rd = survey.readings
-    m, n = len(rd.dv_mv), len(ids)
-    a = np.zeros((m, n))
-    a[np.arange(m), [pos[s] for s in rd.from_id]] = -1
-    a[np.arange(m), [pos[s] for s in rd.to_id]] = 1
-    ref = pos[survey.reference_station]
-    a = np.delete(a, ref, axis=1)
+    m, n = a.shape[0], a.shape[1] + 1
     x, *_ = np.linalg.lstsq(a, rd.dv_mv, rcond=None)
     r = rd.dv_mv - a @ x
     chi2 = float(r @ r) / reading_sigma**2
