@@ -81,4 +81,18 @@ counts as a correct source but not toward recall, missing one is not counted aga
 Read these as the behaviour of geosp on surveys like the generator's, not as a promise for a
 given field survey: SP interpretation is non-unique, the sources are models, and a drilling
 decision belongs to licensed professionals under local regulations.
+
+## Earlier measurements (a record; not regenerated)
+
+The same benchmark (40 surveys per mode) on earlier code, for comparison (targets-only precision
+was not scored before the survey-wide model):
+
+| figure | before the survey-wide model: reduced / raw | survey-wide model, before unchecked line-end readings: reduced / raw |
+|---|---|---|
+| recall | 0.59 / 0.50 | 0.96 / 0.95 |
+| precision (targets only) | 0.66 / 0.82 | 0.80 (0.89) / 0.61 (0.82) |
+| median \|error\| / Cramér–Rao σ, top (joint) | 2.1 / 2.0 | 1.1 (1.1) / 1.7 (1.6) |
+| median \|error\| / Cramér–Rao σ, √(top·bottom) (joint) | 3.1 / 2.8 | 1.6 (1.3) / 2.1 (1.8) |
+| 16–84 % coverage, top / √(top·bottom) | 0.26, 0.39 / 0.38, 0.62 | 0.70, 0.61 / 0.64, 0.53 |
+| terrain within 2 reported σ | 0.23 / 0.15 | 0.82 / 0.82 |
 """
