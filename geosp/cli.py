@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import logging
+import signal
 import sys
 from pathlib import Path
 
@@ -250,5 +251,16 @@ def main(argv=None):
         return 1
 
 
+def entry():
+    """
+    The ``geosp`` command. Once :func:`main` has returned, the outputs are
+    complete; an interrupt during the interpreter's own shutdown would only
+    print a traceback from a library's clean-up, so it is ignored from then on.
+    """
+    code = main()
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    sys.exit(code)
+
+
 if __name__ == "__main__":
-    sys.exit(main())
+    entry()

@@ -216,12 +216,27 @@ def _map_processes(func, items, n, progress):
 
 
 def _collect(pool, func, items, progress):
+    """
+    Results in item order. When items fail, the pending ones are cancelled,
+    the running ones are let finish, and the error of the first failed item
+    in item order is raised: the same message whichever worker was quicker.
+    """
     results = [None] * len(items)
     futures = {pool.submit(func, item): i for i, item in enumerate(items)}
+    failed = {}
     for done, future in enumerate(as_completed(futures), start=1):
-        results[futures[future]] = future.result()
-        if progress is not None:
+        error = future.exception() if not future.cancelled() else None
+        if error is not None:
+            if not failed:
+                for other in futures:
+                    other.cancel()
+            failed[futures[future]] = error
+        elif not future.cancelled():
+            results[futures[future]] = future.result()
+        if progress is not None and not failed:
             progress(done, len(items))
+    if failed:
+        raise failed[min(failed)]
     return results
 
 

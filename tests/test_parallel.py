@@ -3,6 +3,7 @@ Tests of the executors (geosp.parallel).
 """
 
 import math
+import time
 
 import numpy as np
 import numpy.testing as npt
@@ -57,11 +58,16 @@ def test_process_pool_keeps_order_and_item_seed_is_stable():
 
 
 def _refuse(item):
+    if item == 1:  # the first item fails last: the message must still be its own
+        time.sleep(1.0)
     raise OptionError("[detect]", f"item {item} is out of range.", "Fix it.", where="[detect] n_starts")
 
 
 def test_error_raised_in_a_worker_reaches_the_caller_whole():
-    """An input error raised inside a worker process arrives as itself (exit 2), not as a broken pool."""
+    """
+    An input error raised inside a worker process arrives as itself (exit 2), not as a broken
+    pool, and it is the first failed item's whichever worker finished first.
+    """
     with pytest.raises(OptionError, match="item 1 is out of range") as caught:
         map_segments(_refuse, [1, 2], workers=2)
     assert caught.value.where == "[detect] n_starts"
