@@ -17,6 +17,8 @@ import contextlib
 import json
 import os
 import shutil
+import signal
+import threading
 import uuid
 from pathlib import Path
 
@@ -188,9 +190,28 @@ def _finish_swap(out_dir):
     for name in plan["remove"]:
         with contextlib.suppress(FileNotFoundError):
             (out_dir / Path(name).name).unlink()
-    journal.unlink()
     shutil.rmtree(staging, ignore_errors=True)
+    journal.unlink()  # last: until it is gone, a later run finishes this swap
     return True
+
+
+@contextlib.contextmanager
+def _interrupt_after():
+    """
+    Hold a Ctrl-C (SIGINT) until the block is done, then raise it: the moves
+    of a committed output set are few and quick, and are never left half done.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught = []
+    previous = signal.signal(signal.SIGINT, lambda *_: caught.append(True))
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+    if caught:
+        raise KeyboardInterrupt
 
 
 def _clean(out_dir):
@@ -254,14 +275,11 @@ def output_set(out_dir, *, say=None, output_names=OUTPUT_NAMES):
             new.sort(key=lambda n: n == "run.json")
             remove = [n for n in output_names if n not in new and (out_dir / n).exists()]
             plan = {"staging": staging.name, "new": new, "remove": remove}
-            with atomic_path(out_dir / CACHE_DIR / _JOURNAL) as tmp:
-                tmp.write_text(json.dumps(plan), encoding="utf-8")
-            committed = True
-            try:
+            with _interrupt_after():
+                with atomic_path(out_dir / CACHE_DIR / _JOURNAL) as tmp:
+                    tmp.write_text(json.dumps(plan), encoding="utf-8")
+                committed = True
                 _finish_swap(out_dir)
-            except KeyboardInterrupt:  # a second interrupt: finish the renames, then stop
-                _finish_swap(out_dir)
-                raise
         finally:
             if not committed:
                 shutil.rmtree(staging, ignore_errors=True)
