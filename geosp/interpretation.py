@@ -248,6 +248,12 @@ def _summary_rows(state, title):
 
 def _source_text(row):
     """Plain-language lines for one source, with its uncertainty ranges."""
+    if row["model"] == "buried_line":
+        return [f"A buried line of current sources fits the anomaly on segment {row['segment_id']} better than a "
+                f"fault patch ({_fmt(row.get('length_m'))} m long toward {_fmt(row.get('strike_deg'))}°, "
+                f"{_fmt(row['top_depth_m'])} m deep). This pattern is typical of a pipeline or cable that leaks "
+                "or takes current along its length, and is not interpreted as a fault source. Check it against "
+                "the infrastructure on site."]
     if row["model"] == "pole_pair":
         return [f"A shallow pole pair fits the anomaly on segment {row['segment_id']} better than a fault patch "
                 f"(positive pole {_fmt(row['top_depth_m'])} m deep, negative pole {_fmt(row.get('neg_depth_m'))} m "

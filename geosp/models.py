@@ -277,7 +277,7 @@ class SegmentFit:
 
     segment: FaultSegment
     station_index: np.ndarray
-    chosen: str  # "none", "fault_patch", "two_patches", "pole_pair"
+    chosen: str  # "none", "fault_patch", "two_patches", "pole_pair", "buried_line"
     sources: tuple  # of dict
     predicted_mv: np.ndarray  # model at station_index (sources + regional)
     source_mv: np.ndarray  # sources only at station_index

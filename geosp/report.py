@@ -260,6 +260,7 @@ _PARAMETERS = (
     ("Conductivity ratio", "sigma_ratio", None, None, ""),
     ("Negative pole depth", "neg_depth_m", None, None, "m"),
     ("Pole strength", "pole_k_mv_m", None, None, "mV·m"),
+    ("Line strength per unit length", "line_k_mv", None, None, "mV"),
     ("RMS misfit", "rms_mv", None, None, "mV"),
     ("Reduced chi-square", "chi2_red", None, None, ""),
     ("BIC gain over no source", "bic_gain", None, None, ""),

@@ -29,6 +29,7 @@ __all__ = [
     "SEGMENT_FIELDS",
     "SOURCE_FIELDS",
     "POLE_PAIR_FIELDS",
+    "BURIED_LINE_FIELDS",
     "stations_frame",
     "segments_frame",
     "sources_frame",
@@ -56,6 +57,13 @@ SOURCE_FIELDS = ("source_id", "fault_id", "segment_id", "model", "top_x", "top_y
 #: strength (mV·m, potential = k / distance). The positive pole is at
 #: ``top_x``, ``top_y``, ``top_depth_m``.
 POLE_PAIR_FIELDS = ("neg_x", "neg_y", "neg_depth_m", "pole_k_mv_m")
+#: Extra field of a ``buried_line`` row: the strength per unit length (mV,
+#: potential = k ∫ ds / R along the line). Its centre is at ``top_x``,
+#: ``top_y``, its depth ``top_depth_m``, its direction ``strike_deg`` and its
+#: length ``length_m``.
+BURIED_LINE_FIELDS = ("line_k_mv",)
+#: Models of cultural sources: drawn as a line (two poles, or a buried line) with a band about it.
+CULTURAL_MODELS = ("pole_pair", "buried_line")
 
 _TEXT_SOURCE_FIELDS = ("source_id", "fault_id", "segment_id", "model", "flags")
 _INT_SOURCE_FIELDS = ("n_stations",)
@@ -204,7 +212,7 @@ def footprint_half_width(row):
     :data:`POLE_MIN_REACH_M`).
     """
     sd = _num(row, "location_sd_m")
-    if str(row.get("model", "")) == "pole_pair":
+    if str(row.get("model", "")) in CULTURAL_MODELS:
         top = _num(row, "top_depth_m")
         cap = max(POLE_REACH_DEPTHS * top, POLE_MIN_REACH_M) if np.isfinite(top) else np.inf
         if np.isfinite(sd) and sd > 0:
@@ -245,7 +253,22 @@ def _patch_corners(row):
     return centre, along, across, half_len, offset, top, bottom
 
 
-def _pole_pair_line(row):
+def _cultural_line(row):
+    """
+    The two ends ``(x, y)`` and their depths of a cultural source: the two
+    poles of a pole pair, or the ends of a buried line.
+    """
+    if str(row.get("model", "")) == "buried_line":
+        centre = np.array([_num(row, "top_x"), _num(row, "top_y")])
+        strike, length, depth = _num(row, "strike_deg"), _num(row, "length_m"), _num(row, "top_depth_m")
+        if not (np.all(np.isfinite(centre)) and np.isfinite(strike) and length >= 0):
+            raise ValueError(
+                f"Source {row.get('source_id', '?')!s}: a buried_line row needs finite top_x, top_y, "
+                "strike_deg and a length_m >= 0 (m)."
+            )
+        phi = math.radians(strike)
+        half = 0.5 * length * np.array([math.sin(phi), math.cos(phi)])
+        return centre - half, centre + half, depth, depth
     pos = np.array([_num(row, "top_x"), _num(row, "top_y")])
     neg = np.array([_num(row, "neg_x"), _num(row, "neg_y")])
     if not (np.all(np.isfinite(pos)) and np.all(np.isfinite(neg))):
@@ -253,13 +276,13 @@ def _pole_pair_line(row):
             f"Source {row.get('source_id', '?')!s}: a pole_pair row needs finite top_x, top_y, "
             "neg_x and neg_y (m)."
         )
-    return pos, neg
+    return pos, neg, _num(row, "top_depth_m", 0.0), _num(row, "neg_depth_m", 0.0)
 
 
 def _footprint(row):
     """Surface footprint polygon of one source row (see :func:`sources_frame`)."""
-    if str(row.get("model", "")) == "pole_pair":
-        pos, neg = _pole_pair_line(row)
+    if str(row.get("model", "")) in CULTURAL_MODELS:
+        pos, neg, _, _ = _cultural_line(row)
         half = footprint_half_width(row)
         if np.allclose(pos, neg):
             return Point(pos).buffer(half, quad_segs=8)
@@ -298,8 +321,8 @@ def _source_table(rows):
         for key in r:
             if key not in SOURCE_FIELDS and key != "geometry" and key not in extras:
                 extras.append(key)
-    ordered_extras = [k for k in POLE_PAIR_FIELDS if k in extras] + [
-        k for k in extras if k not in POLE_PAIR_FIELDS]
+    model_fields = POLE_PAIR_FIELDS + BURIED_LINE_FIELDS
+    ordered_extras = [k for k in model_fields if k in extras] + [k for k in extras if k not in model_fields]
     columns = list(SOURCE_FIELDS) + ordered_extras
     data = {}
     for key in columns:
@@ -372,7 +395,8 @@ def sources_frame(rows, crs, *, coverage=None):
     ``location_sd_m`` either side, or 10 % of the top depth, at least 1 m.
 
     A ``pole_pair`` footprint is the segment joining the two poles buffered
-    by the same half-width.
+    by the same half-width; a ``buried_line`` footprint is the line buffered
+    by it.
 
     Sign convention: ``jump_mv`` is the jump of the total potential across
     the patch, dip-direction side minus the other side; with ``jump_mv > 0``
@@ -406,10 +430,9 @@ def _ground_values(ground_m, n):
 
 
 def _patch_3d(row, ground):
-    if str(row.get("model", "")) == "pole_pair":
-        pos, neg = _pole_pair_line(row)
-        z_pos = ground - _num(row, "top_depth_m", 0.0)
-        z_neg = ground - _num(row, "neg_depth_m", 0.0)
+    if str(row.get("model", "")) in CULTURAL_MODELS:
+        pos, neg, depth_pos, depth_neg = _cultural_line(row)
+        z_pos, z_neg = ground - depth_pos, ground - depth_neg
         half = footprint_half_width(row)
         d = neg - pos
         norm = float(np.hypot(*d))
@@ -505,6 +528,9 @@ def kml_frame(sources):
         status = row.get("status") or ""
         if row.get("model") == "pole_pair":
             return f"{status}; pole pair, positive pole {_num(row, 'top_depth_m'):.0f} m deep"
+        if row.get("model") == "buried_line":
+            return (f"{status}; buried line (pipeline or cable?) {_num(row, 'length_m'):.0f} m long toward "
+                    f"{_num(row, 'strike_deg'):.0f} deg, {_num(row, 'top_depth_m'):.0f} m deep")
         top_elev = _num(row, "ground_m") - _num(row, "top_depth_m")
         elevation = f", top at {top_elev:.0f} m above sea level" if np.isfinite(top_elev) else ""
         return (f"{status}; fault patch on {row.get('fault_id', '')}: top {_num(row, 'top_depth_m'):.0f} m deep"

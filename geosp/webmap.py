@@ -313,7 +313,7 @@ _SOURCE_STYLE = {"target": ("#7b3294", 2.5, None, 0.15), "uncertain": ("#7b3294"
 
 def _source_properties(row):
     model = str(row.get("model", ""))
-    status = str(row.get("status") or ("cultural" if model == "pole_pair" else "target"))
+    status = str(row.get("status") or ("cultural" if model in ("pole_pair", "buried_line") else "target"))
     colour, weight, dash, fill = _SOURCE_STYLE.get(status, _SOURCE_STYLE["target"])
     props = {
         "Source": _text(row.get("source_id")),
@@ -322,7 +322,15 @@ def _source_properties(row):
         "Model": _text(model),
         "Fault / segment": f"{_text(row.get('fault_id'))} / {_text(row.get('segment_id'))}",
     }
-    if model == "pole_pair":
+    if model == "buried_line":
+        props.update({
+            "Centre E / N (m)": f"{_number(row.get('top_x'), 0)} / {_number(row.get('top_y'), 0)}",
+            "Direction (°)": _number(row.get("strike_deg"), 0),
+            "Length (m)": _number(row.get("length_m"), 0),
+            "Depth (m)": _number(row.get("top_depth_m")),
+            "Strength per unit length (mV)": _number(row.get("line_k_mv"), 1),
+        })
+    elif model == "pole_pair":
         props.update({
             "Positive pole depth (m)": _with_range(row, "top_depth_m", "top_depth_lo_m",
                                                    "top_depth_hi_m"),
@@ -367,7 +375,8 @@ def _difference(a, b):
 _PARAMETER_WORDS = {"top_depth_m": "top depth", "height_m": "height", "bottom_depth_m": "bottom depth",
                     "length_m": "length", "dip_deg": "dip", "sigma_ratio": "conductivity ratio",
                     "strength": "strength", "jump_mv": "jump", "pole_depth_m": "pole depth",
-                    "neg_depth_m": "negative pole depth", "log_casing_length": "casing length"}
+                    "neg_depth_m": "negative pole depth", "log_casing_length": "casing length",
+                    "line_azimuth_deg": "line direction", "line_depth_m": "line depth"}
 
 
 def _flag_words(flags):

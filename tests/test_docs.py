@@ -175,11 +175,11 @@ def test_every_layer_field_is_documented():
 def test_every_source_row_key_is_documented():
     """Keys the survey model puts in source rows (kept as extra columns) are all described."""
     from geosp.interpret import results
-    from geosp.sources import fault_patch, pole_pair
+    from geosp.sources import buried_line, fault_patch, pole_pair
 
     keys = set()
     for func in (results.source_rows, results._patch_uncertainty, fault_patch.FaultPatch.row,
-                 pole_pair.PolePair.row):
+                 pole_pair.PolePair.row, buried_line.BuriedLine.row):
         source = inspect.getsource(func)
         keys |= set(re.findall(r'row\["([a-z][a-z0-9_]*)"\]\s*=', source))
         keys |= set(re.findall(r'^\s*"([a-z][a-z0-9_]*)":', source, flags=re.M))
@@ -291,6 +291,28 @@ def test_pole_pair_formula_in_outputs_matches_physics():
     # closed form against closed form: round-off only
     np.testing.assert_allclose(sources_sp((x, y), [row]), expected, rtol=1e-10)
     assert "`pole_k_mv_m` · (1/r₊ − 1/r₋)" in _read("outputs.md")
+
+
+def test_buried_line_formula_in_outputs_matches_physics():
+    """outputs.md states V = line_k_mv·∫ ds / R; check it against sources_sp by quadrature."""
+    from scipy import integrate
+
+    from geosp.physics.forward import sources_sp
+
+    row = {"model": "buried_line", "top_x": 100.0, "top_y": -40.0, "strike_deg": 70.0,
+           "length_m": 900.0, "top_depth_m": 3.0, "line_k_mv": -8.0}
+    x = np.array([-50.0, 120.0, 700.0])
+    y = np.array([5.0, -20.0, 40.0])
+    phi = np.radians(70.0)
+
+    def integral(xi, yi):
+        def inverse_r(s):
+            return 1.0 / np.sqrt((100.0 + s * np.sin(phi) - xi) ** 2 + (-40.0 + s * np.cos(phi) - yi) ** 2 + 9.0)
+        return integrate.quad(inverse_r, -450.0, 450.0, limit=400, epsabs=1e-12, epsrel=1e-10)[0]
+
+    expected = -8.0 * np.array([integral(a, b) for a, b in zip(x, y)])  # the pole potential integrated
+    np.testing.assert_allclose(sources_sp((x, y), [row]), expected, rtol=1e-8)
+    assert "`line_k_mv` · ∫ ds / R" in _read("outputs.md")
 
 
 def test_readme_quotes_the_accuracy_page():

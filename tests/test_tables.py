@@ -128,6 +128,22 @@ def test_pole_pair_footprint_and_fields():
     assert frame["n_stations"].dtype == "int64"
 
 
+def test_buried_line_footprint_3d_and_fields():
+    # A line 400 m long toward 30° (centre 1000, 2000), 4 m deep, location sd 5 m:
+    # a band of 2·5·400 plus two half-discs (buffer of a segment), ends 200 m either side.
+    row = dict(source_id="Q1", fault_id="F2", segment_id="F2-1", model="buried_line",
+               top_x=1000.0, top_y=2000.0, strike_deg=30.0, length_m=400.0, top_depth_m=4.0,
+               line_k_mv=-12.0, location_sd_m=5.0, flags=[])
+    frame = tables.sources_frame([row, patch_row()], CRS)
+    poly = frame.geometry.iloc[0]
+    assert poly.area == pytest.approx(2 * 5.0 * 400.0 + math.pi * 25.0, rel=1e-2)
+    end = (1000.0 + 200.0 * math.sin(math.radians(30.0)), 2000.0 + 200.0 * math.cos(math.radians(30.0)))
+    assert poly.buffer(1e-6).contains(Polygon([end, (end[0] + 1, end[1]), (end[0], end[1] + 1)]).centroid)
+    assert "line_k_mv" in frame.columns and np.isnan(frame["line_k_mv"].iloc[1])
+    solid = tables.sources_3d_frame([row], CRS, ground_m=300.0).geometry.iloc[0]
+    npt.assert_allclose(sorted(set(np.asarray(solid.exterior.coords)[:, 2])), [296.0])
+
+
 def test_pole_pair_footprint_is_not_widened_by_a_degenerate_location_sd():
     # A casing pole 13 m deep whose linearised location sd came out at 20 km: the disc is at
     # most 3 x 13 = 39 m in radius (docs/outputs.md, footprint rule); the field keeps 20 km.

@@ -100,7 +100,7 @@ def detection_figure(detections, stations=None, *, ax=None):
                     label="score (max |â/σ_â| over templates)")
     handles = [Line2D([], [], color="k", lw=3.5, label="detected"),
                Line2D([], [], color="k", lw=1.2, label="not detected"),
-               Line2D([], [], color="k", lw=3.5, ls="--", label="cultural (pole pair fits better)"),
+               Line2D([], [], color="k", lw=3.5, ls="--", label="cultural (a pole pair or buried line fits better)"),
                Line2D([], [], color="0.6", lw=1.2, label="not scored")]
     if stations is not None and len(stations):
         handles.append(Line2D([], [], color="0.75", marker=".", ls="", label="stations"))

@@ -27,6 +27,13 @@ _POLE_PARAMETERS = (
     ("pole strength k (mV·m)", "pole_k_mv_m", None, None, None),
 )
 
+_LINE_PARAMETERS = (
+    ("line depth (m)", "top_depth_m", "top_depth_sd_m", None, None),
+    ("line length (m)", "length_m", None, None, None),
+    ("line direction (°)", "strike_deg", None, None, None),
+    ("strength per unit length (mV)", "line_k_mv", None, None, None),
+)
+
 
 def _value(row, key):
     if key is None or key not in row:
@@ -57,7 +64,8 @@ def parameter_table(fit):
     """
     rows = []
     for source in fit.sources:
-        spec = _POLE_PARAMETERS if source.get("model") == "pole_pair" else _PATCH_PARAMETERS
+        spec = {"pole_pair": _POLE_PARAMETERS, "buried_line": _LINE_PARAMETERS}.get(source.get("model"),
+                                                                                   _PATCH_PARAMETERS)
         for label, key, sd_key, lo_key, hi_key in spec:
             value, sd = _value(source, key), _value(source, sd_key)
             lo, hi = _value(source, lo_key), _value(source, hi_key)

@@ -74,9 +74,10 @@ def detect_sources(stations, segments, *, network=None, estimate_terrain=True, f
         Conductivity contrasts across the fault tried on vertical templates
         (besides none). Default 1/4 and 4.
     cultural : bool
-        Let a shallow pole pair (pipeline, cable) or a casing (a pole at its
-        head and one at its foot) compete for every anomaly; one that fits
-        clearly better is reported as likely cultural. Default True.
+        Let a shallow pole pair, a casing (a pole at its head and one at its
+        foot) or a buried line (pipeline, cable) compete for every anomaly;
+        one that fits clearly better is reported as likely cultural.
+        Default True.
     max_sources : int
         Most sources in one survey (or in one block of a large survey).
         Default 40.

@@ -38,6 +38,7 @@ import numpy as np
 from scipy import optimize
 
 from ..sources.fault_patch import MIN_DIP_DEG, FaultPatch
+from ..sources.buried_line import BuriedLine
 from ..sources.pole_pair import PolePair
 from . import candidates as cand
 from .linear import TERRAIN, Frame, Projector, match_scores, nuisance_columns, solve
@@ -648,7 +649,7 @@ def _try_source(context, state, sources, scan, threshold):
         rival, rival_best = _best_rival(context, rival_jobs, fitted[len(jobs):])
         if rival_best is not None:
             rival_gain = base_chi2 - rival_best[1]
-            note += f", {'pole' if rival.single else 'pole-pair'} gain {rival_gain:.1f}"
+            note += f", {_rival_name(rival)} gain {rival_gain:.1f}"
             # The burden of proof is on the cultural rival: sources on mapped
             # faults are what the survey is for, so the rival must fit clearly
             # better, whatever its number of parameters.
@@ -684,8 +685,9 @@ def _fit_all(context, jobs):
 
 def _cultural_jobs(context, local, base_residual, window, base_models, base_ps):
     """
-    Fits of a single shallow pole and a shallow pole pair near the window,
-    from the best starts at the residual's extremes: [(model, job), ...].
+    Fits of a single shallow pole, a shallow pole pair and a buried line
+    near the window, from the best starts at the residual's extremes:
+    [(model, job), ...].
     """
     survey = context.survey
     frame = window.frame
@@ -719,7 +721,41 @@ def _cultural_jobs(context, local, base_residual, window, base_models, base_ps):
                                                math.log(z)], model.lower, model.upper))
         for start in _rank_starts(local, base_residual, sub, starts, 2):
             out.append((model, (local, base_models + [sub], base_ps + [start])))
+    model = BuriedLine(frame, along, across, box, min_depth_m=max(2.0, 0.1 * survey.spacing),
+                       min_length_m=max(3.0 * survey.spacing, 100.0))
+    sub = model.subset(local.index)
+    starts = []
+    for extreme in (hi, lo):
+        for a in extreme:
+            for direction in _line_directions(la[extreme], lc[extreme]):
+                for z in (3.0, 15.0):
+                    for length in (1000.0, 5000.0):
+                        starts.append(np.clip([la[a], lc[a], direction, math.log(length), math.log(z)],
+                                              model.lower, model.upper))
+    for start in _rank_starts(local, base_residual, sub, starts, 2):
+        out.append((model, (local, base_models + [sub], base_ps + [start])))
     return out
+
+
+def _line_directions(s, t):
+    """
+    Start directions of a buried line (degrees from the frame's strike, in
+    [−90°, 90°)): every 30°, and the principal axis of the residual's
+    extreme stations, which a line of infrastructure strings out.
+    """
+    out = [-90.0, -60.0, -30.0, 0.0, 30.0, 60.0]
+    if s.size >= 2 and np.ptp(s) + np.ptp(t) > 0:
+        cov = np.cov(np.vstack([s, t]))
+        w, v = np.linalg.eigh(cov)
+        axis = math.degrees(math.atan2(v[1, -1], v[0, -1]))
+        out.append((axis + 90.0) % 180.0 - 90.0)
+    return out
+
+
+def _rival_name(model):
+    if model.name == "buried_line":
+        return "buried-line"
+    return "pole" if model.single else "pole-pair"
 
 
 def _best_rival(context, rival_jobs, fitted):

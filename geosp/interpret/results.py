@@ -87,7 +87,8 @@ def _at_bound(model, p):
 _PARAMETER_LABEL = {"centre": "centre_m", "log_length": "length_m", "log_top": "top_depth_m",
                     "log_height": "height_m", "dip": "dip_deg", "log_ratio": "sigma_ratio",
                     "pos_s": "pole_s_m", "pos_t": "pole_t_m", "log_pos_depth": "pole_depth_m",
-                    "neg_s": "neg_s_m", "neg_t": "neg_t_m", "log_neg_depth": "neg_depth_m"}
+                    "neg_s": "neg_s_m", "neg_t": "neg_t_m", "log_neg_depth": "neg_depth_m",
+                    "azimuth": "line_azimuth_deg", "log_depth": "line_depth_m"}
 
 
 def source_rows(selection, names, cov, survey_xy, elevation):
@@ -152,13 +153,16 @@ def source_rows(selection, names, cov, survey_xy, elevation):
             row["status"] = "uncertain" if uncertain else "target"
         else:
             flags.append("likely cultural")
-            sd_pole = sd[:len(s.model.names)]
+            names = s.model.names
+            i_depth = names.index("log_depth" if "log_depth" in names else "log_pos_depth")
+            row.setdefault("length_m", math.nan)
             row.update(top_depth_lo_m=math.nan, top_depth_hi_m=math.nan, jump_lo_mv=math.nan,
-                       jump_hi_mv=math.nan, bottom_depth_m=math.nan, length_m=math.nan,
+                       jump_hi_mv=math.nan, bottom_depth_m=math.nan,
                        jump_mv=math.nan, dip_deg=math.nan, sigma_ratio=1.0,
-                       location_sd_m=float(math.hypot(sd_pole[0], sd_pole[1])),
-                       top_depth_sd_m=float(row["top_depth_m"] * sd_pole[2]),
-                       pole_k_joint_mv_m=row["pole_k_mv_m"], status="cultural")
+                       location_sd_m=float(math.hypot(sd[0], sd[1])),
+                       top_depth_sd_m=float(row["top_depth_m"] * sd[i_depth]), status="cultural")
+            if "pole_k_mv_m" in row:
+                row["pole_k_joint_mv_m"] = row["pole_k_mv_m"]
         row["jump_joint_mv"] = row.get("jump_mv", math.nan)
         row["flags"] = "; ".join(dict.fromkeys(flags))
         rows.append(row)
@@ -263,8 +267,9 @@ def segment_detections(selection, stations, *, false_alarm_rate, corridor_m):
             note = (f"source found: score {score:.1f} above the threshold {selection.threshold:.1f} "
                     f"(false-alarm probability {p:.2g} over the survey)")
         elif cultural:
-            note = (f"anomaly (score {score:.1f}) explained better by a shallow pole pair: likely "
-                    "cultural or near-surface")
+            what = {"buried_line": "a buried line (pipeline, cable)"}.get(cultural[0].model.name,
+                                                                        "a shallow pole pair")
+            note = f"anomaly (score {score:.1f}) explained better by {what}: likely cultural or near-surface"
         elif marginal and score > selection.threshold:
             note = (f"marginal: score {score:.1f} above the threshold {selection.threshold:.1f} "
                     f"(false-alarm probability {p:.2g}), but no source fitted here explained "
@@ -305,7 +310,7 @@ def segment_fits(selection, detections, rows, stations):
         predicted = np.full(index.size, np.nan)
         predicted[ok] = model_all[index[ok]]
         seg_rows = tuple(r for r in rows if r["segment_id"] == det.segment.segment_id)
-        chosen = "fault_patch" if any(s.kind == "fault" for _, s in mine) else "pole_pair"
+        chosen = "fault_patch" if any(s.kind == "fault" for _, s in mine) else mine[0][1].model.name
         selection_table = pd.DataFrame([{"model": r["model"], "bic_gain": r["bic_gain"]} for r in seg_rows])
         weights = np.zeros(index.size)
         weights[ok] = 1.0

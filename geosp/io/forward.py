@@ -14,6 +14,7 @@ from .vector import read_vector
 FAULT_PATCH_FIELDS = ("top_x", "top_y", "strike_deg", "dip_deg", "top_depth_m", "bottom_depth_m",
                       "length_m", "jump_mv")
 POLE_PAIR_FIELDS = ("top_x", "top_y", "top_depth_m", "neg_x", "neg_y", "neg_depth_m", "pole_k_mv_m")
+BURIED_LINE_FIELDS = ("top_x", "top_y", "strike_deg", "length_m", "top_depth_m", "line_k_mv")
 
 
 def read_forward_inputs(sources_path, stations_path, *, layer="sources"):
@@ -21,16 +22,17 @@ def read_forward_inputs(sources_path, stations_path, *, layer="sources"):
     sources, layer = read_vector(Path(sources_path), layer=layer, what="sources file")
     if "model" not in sources.columns:
         raise InputError(sources_path, f"layer '{layer}' has no 'model' field.",
-                         "Use the sources layer schema (docs/outputs.md): model = fault_patch or pole_pair.")
+                         "Use the sources layer schema (docs/outputs.md): model = fault_patch, pole_pair or buried_line.")
     if sources.crs is None:
         raise InputError(sources_path, f"layer '{layer}' has no CRS.", "Write it with its projected CRS.")
     problems = []
     for i, row in sources.reset_index(drop=True).iterrows():
         where = f"feature {i + 1} ({row.get('source_id', '')})"
-        need = {"fault_patch": FAULT_PATCH_FIELDS, "pole_pair": POLE_PAIR_FIELDS}.get(row["model"])
+        need = {"fault_patch": FAULT_PATCH_FIELDS, "pole_pair": POLE_PAIR_FIELDS,
+                "buried_line": BURIED_LINE_FIELDS}.get(row["model"])
         if need is None:
             problems.append(InputError(sources_path, f"{where}: unknown model {row['model']!r}.",
-                                       "Use fault_patch or pole_pair."))
+                                       "Use fault_patch, pole_pair or buried_line."))
             continue
         bad = [f for f in need if f not in row or pd.isna(row[f])]
         if bad:

@@ -2,6 +2,8 @@
 (``forward``) and derivatives (``jacobian``)."""
 
 from .forward import (  # noqa: F401
+    buried_line_sp,
+    line_integral,
     fault_patch_sp,
     inclined_sheet_2d_sp,
     patch_sp_local,

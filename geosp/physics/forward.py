@@ -288,6 +288,53 @@ def pole_pair_sp(coordinates, *, pos_x, pos_y, pos_depth_m, neg_x, neg_y, neg_de
     return positive - negative
 
 
+def line_integral(along, across, *, length_m, depth_m):
+    """
+    ∫ ds / R along a horizontal segment of a line (dimensionless), seen from
+    points at ``along``, ``across`` (m) of its centre, the segment at depth
+    ``depth_m`` (scalar or per point): asinh(a/h) + asinh(b/h) with
+    a, b = L/2 ∓ along and h = √(across² + depth²).
+    """
+    h = np.sqrt(np.asarray(across, float) ** 2 + np.asarray(depth_m, float) ** 2)
+    half = 0.5 * length_m
+    return np.arcsinh((half - along) / h) + np.arcsinh((half + along) / h)
+
+
+def buried_line_sp(coordinates, *, x, y, azimuth_deg, length_m, depth_m, k_mv, ground_m=None):
+    """
+    Surface SP (mV) of a horizontal line of current sources of uniform
+    strength (a buried pipeline or cable that leaks or takes current along
+    its length) on a half-space: V = k ∫ ds / R over the line, the point-pole
+    potential k/r integrated along it (physics notes §3, [Telford1990]_).
+
+    Parameters
+    ----------
+    coordinates : tuple of arrays
+        ``(easting, northing[, upward])`` of the stations in m.
+    x, y : float
+        Centre of the line (m).
+    azimuth_deg : float
+        Direction of the line, clockwise from grid north (degrees).
+    length_m, depth_m : float
+        Length of the line and its depth below ground (m).
+    k_mv : float
+        Strength per unit length, ρI′/(2π) in mV (I′ the current per metre).
+    ground_m : float or None
+        As in :func:`point_pole_sp`.
+
+    Returns
+    -------
+    sp : array
+        SP in mV, shape of the station coordinates.
+    """
+    easting, northing, depth_offset = _station_arrays(coordinates, ground_m)
+    phi = math.radians(azimuth_deg)
+    dx, dy = easting - x, northing - y
+    along = dx * math.sin(phi) + dy * math.cos(phi)
+    across = dx * math.cos(phi) - dy * math.sin(phi)
+    return k_mv * line_integral(along, across, length_m=length_m, depth_m=depth_m + depth_offset)
+
+
 def sphere_sp(coordinates, *, x, y, depth_m, k_mv_m2, azimuth_deg=0.0,
               elevation_deg=90.0, ground_m=None):
     """
@@ -408,6 +455,7 @@ _PATCH_FIELDS = ("top_x", "top_y", "strike_deg", "dip_deg", "top_depth_m",
                  "bottom_depth_m", "length_m", "jump_mv")
 _POLE_PAIR_FIELDS = ("top_x", "top_y", "top_depth_m", "neg_x", "neg_y", "neg_depth_m",
                      "pole_k_mv_m")
+_BURIED_LINE_FIELDS = ("top_x", "top_y", "strike_deg", "length_m", "top_depth_m", "line_k_mv")
 
 
 def _number(row, name):
@@ -442,8 +490,11 @@ def _source_calls(sources):
             fields = _PATCH_FIELDS
         elif model == "pole_pair":
             fields = _POLE_PAIR_FIELDS
+        elif model == "buried_line":
+            fields = _BURIED_LINE_FIELDS
         else:
-            problems.append(f"{label}: unknown model {model!r}; use 'fault_patch' or 'pole_pair'")
+            problems.append(f"{label}: unknown model {model!r}; use 'fault_patch', 'pole_pair' or "
+                            "'buried_line'")
             continue
         values = {name: _number(row, name) for name in fields}
         missing = [name for name, value in values.items() if not math.isfinite(value)]
@@ -465,6 +516,14 @@ def _source_calls(sources):
             kwargs = dict(values, sigma_ratio=_optional(row, "sigma_ratio", 1.0),
                           ground_m=ground)
             calls.append((fault_patch_sp, kwargs))
+        elif model == "buried_line":
+            if not (values["top_depth_m"] > 0.0 and values["length_m"] >= 0.0):
+                problems.append(f"{label}: a buried line needs top_depth_m > 0 and length_m >= 0")
+                continue
+            kwargs = dict(x=values["top_x"], y=values["top_y"], azimuth_deg=values["strike_deg"],
+                          length_m=values["length_m"], depth_m=values["top_depth_m"],
+                          k_mv=values["line_k_mv"], ground_m=ground)
+            calls.append((buried_line_sp, kwargs))
         else:
             if not (values["top_depth_m"] > 0.0 and values["neg_depth_m"] > 0.0):
                 problems.append(f"{label}: pole depths must be positive")
@@ -499,7 +558,9 @@ def sources_sp(coordinates, sources, *, chunk_size=_DEFAULT_CHUNK):
         ground_m; see :func:`fault_patch_sp`) or ``"pole_pair"`` (positive
         pole at top_x, top_y, top_depth_m; negative pole at neg_x, neg_y,
         neg_depth_m; strength pole_k_mv_m in mV·m; optional ground_m; see
-        :func:`pole_pair_sp`). A missing or empty ``model`` means
+        :func:`pole_pair_sp`) or ``"buried_line"`` (centre top_x, top_y,
+        direction strike_deg, length_m, depth top_depth_m, strength
+        line_k_mv in mV; see :func:`buried_line_sp`). A missing or empty ``model`` means
         ``fault_patch``; other fields of the layer are ignored.
     chunk_size : int
         Stations evaluated at a time; memory grows with it, not with the

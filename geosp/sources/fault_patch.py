@@ -19,12 +19,12 @@ mV) is linear.
 
 from __future__ import annotations
 
-import copy
 import math
 
 import numpy as np
 
 from .. import physics
+from ._base import SourceModel
 
 NAME = "fault_patch"
 #: Lowest dip tried (degrees).
@@ -33,7 +33,7 @@ MIN_DIP_DEG = 30.0
 RATIO_BOUNDS = (0.1, 10.0)
 
 
-class FaultPatch:
+class FaultPatch(SourceModel):
     """
     One fault patch to fit in a segment's frame.
 
@@ -56,6 +56,7 @@ class FaultPatch:
     """
 
     name = NAME
+    per_station = ("along", "across", "offset")
 
     def __init__(self, frame, along, across, offset, ground_m, bounds, *, fit_ratio=False):
         self.frame = frame
@@ -75,18 +76,6 @@ class FaultPatch:
         self.lower = np.array(lower, dtype=float)
         self.upper = np.array(upper, dtype=float)
 
-    def subset(self, index):
-        """The same model seen by the stations at ``index`` only."""
-        out = copy.copy(self)
-        out.along = self.along[index]
-        out.across = self.across[index]
-        out.offset = self.offset[index]
-        return out
-
-    @property
-    def k(self):
-        """Number of nonlinear parameters."""
-        return self.lower.size
 
     # parameters -------------------------------------------------------------------------
 

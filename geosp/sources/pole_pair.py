@@ -18,12 +18,12 @@ strength k (mV·m) is linear.
 
 from __future__ import annotations
 
-import copy
 import math
 
 import numpy as np
 
 from .. import physics
+from ._base import SourceModel
 
 NAME = "pole_pair"
 #: Deepest pole of a cultural pair (m) and farthest apart the two poles may
@@ -38,7 +38,7 @@ SINGLE_MAX_DEPTH_M = 150.0
 CASING_LENGTH_M = (50.0, 5000.0)
 
 
-class PolePair:
+class PolePair(SourceModel):
     """
     One pole pair to fit in a frame, within a box of the frame.
 
@@ -72,16 +72,6 @@ class PolePair:
         self.lower = np.array([s0, t0, zlo, -half, -half, zlo])
         self.upper = np.array([s1, t1, zhi, half, half, zhi])
 
-    def subset(self, index):
-        """The same model seen by the stations at ``index`` only."""
-        out = copy.copy(self)
-        out.along = self.along[index]
-        out.across = self.across[index]
-        return out
-
-    @property
-    def k(self):
-        return self.lower.size
 
     def natural(self, p):
         pos = (float(p[0]), float(p[1]), math.exp(p[2]))

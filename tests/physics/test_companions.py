@@ -4,6 +4,8 @@ strip and 2-D inclined sheet (physics notes §2.6 and §3), checked against
 handbook formulas, numerical integration and the 3-D patch.
 """
 
+import math
+
 import numpy as np
 import numpy.testing as npt
 import pytest
@@ -218,3 +220,21 @@ def test_inclined_sheet_equals_integrated_line_dipoles(dip):
         npt.assert_allclose(
             inclined_sheet_2d_sp(-across, depth_top_m=top, depth_bottom_m=bottom, dip_deg=dip,
                                  k_mv=k), sp, rtol=1e-13)
+
+
+def test_buried_line_is_the_limit_of_a_row_of_poles():
+    # A row of point poles k = k′·Δ every Δ metres [Telford1990] tends to the
+    # line of strength k′ for stations much farther from it than Δ
+    # (midpoint rule; 0.5 % here, 150 m or more away with Δ = 5 m).
+    from geosp.physics import buried_line_sp, point_pole_sp
+
+    spacing, length, depth, k_line = 5.0, 3000.0, 2.0, 4.0
+    s = np.arange(-0.5 * length + 0.5 * spacing, 0.5 * length, spacing)
+    phi = math.radians(60.0)
+    px, py = 100.0 + s * math.sin(phi), -50.0 + s * math.cos(phi)
+    e = np.array([300.0, -400.0, 900.0, 100.0 + 200.0 * math.cos(phi)])
+    n = np.array([-300.0, 250.0, 900.0, -50.0 - 200.0 * math.sin(phi)])
+    rows = sum(point_pole_sp((e, n), x=x, y=y, depth_m=depth, k_mv_m=k_line * spacing) for x, y in zip(px, py))
+    line = buried_line_sp((e, n), x=100.0, y=-50.0, azimuth_deg=60.0, length_m=length, depth_m=depth,
+                          k_mv=k_line)
+    npt.assert_allclose(line, rows, rtol=5e-3)
