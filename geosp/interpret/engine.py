@@ -22,9 +22,9 @@ in whitened space (independent unit normals projected like the data), so it
 never reuses the data's own anomalies. While the best window's score exceeds
 the null's (1 − false_alarm_rate) quantile, a fault patch is fitted there
 (several starts across depth families and both dip directions, interacting
-sources re-fitted with it), a shallow pole pair competes for the same
-anomaly, and the winner is kept if its likelihood gain also clears the
-threshold. The noise model is then re-estimated from the residuals and the
+sources re-fitted with it), a shallow pole, pole pair and buried line
+(pipeline, cable) compete for the same anomaly, and the winner is kept if
+its likelihood gain also clears the threshold. The noise model is then re-estimated from the residuals and the
 selection checked again, until it is stable.
 """
 
@@ -37,8 +37,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import optimize
 
-from ..sources.fault_patch import MIN_DIP_DEG, FaultPatch
 from ..sources.buried_line import BuriedLine
+from ..sources.fault_patch import MIN_DIP_DEG, FaultPatch
 from ..sources.pole_pair import PolePair
 from . import candidates as cand
 from .linear import TERRAIN, Frame, Projector, match_scores, nuisance_columns, solve
@@ -746,7 +746,7 @@ def _line_directions(s, t):
     out = [-90.0, -60.0, -30.0, 0.0, 30.0, 60.0]
     if s.size >= 2 and np.ptp(s) + np.ptp(t) > 0:
         cov = np.cov(np.vstack([s, t]))
-        w, v = np.linalg.eigh(cov)
+        _, v = np.linalg.eigh(cov)
         axis = math.degrees(math.atan2(v[1, -1], v[0, -1]))
         out.append((axis + 90.0) % 180.0 - 90.0)
     return out

@@ -29,11 +29,12 @@ def elevation_at(x, y, *, extent=3000.0, relief=120.0):
 
 def build_survey(*, sources=(), faults=None, k=-1.0, regional=(0.0, 3.0, -2.0), white=3.0,
                  correlated=0.0, length=200.0, seed=0, n_lines=13, line_spacing=150.0,
-                 spacing=30.0, extent=3000.0, weights=None, relief=120.0):
+                 spacing=30.0, extent=3000.0, weights=None, relief=120.0, extra=None):
     """
     Stations on east-west lines over a square survey, with SP = sources
     (``fault_patch_sp`` rows) + regional plane (mV, mV/km east, mV/km north)
-    + k·elevation + white and exponentially correlated noise.
+    + k·elevation + white and exponentially correlated noise, plus
+    ``extra(x, y, elev)`` (mV) when given.
 
     Returns (Stations, segments, truth dict).
     """
@@ -52,6 +53,8 @@ def build_survey(*, sources=(), faults=None, k=-1.0, regional=(0.0, 3.0, -2.0), 
         signal += fault_patch_sp((x, y, elev), **row)
     c, ge, gn = regional
     signal += c + ge * (x - E0) / 1000.0 + gn * (y - N0) / 1000.0 + k * elev
+    if extra is not None:
+        signal += extra(x, y, elev)
     noise = rng.normal(0.0, white, x.size) + exponential_noise(x, y, correlated, length, rng)
     ids = [f"S{i:05d}" for i in range(x.size)]
     w = np.ones(x.size) if weights is None else np.asarray(weights(x, y), float)

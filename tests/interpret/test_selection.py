@@ -129,6 +129,34 @@ def test_one_anomaly_across_a_segment_cut_is_one_source():
     assert rows[0]["length_m"] == pytest.approx(1400.0, rel=0.35)
 
 
+def _pipeline(x, y, elev):
+    """A pipeline crossing the fault at 11° toward 11°: point poles 2 m deep every 25 m [Telford1990]."""
+    from geosp.physics.forward import point_pole_sp
+
+    s = np.arange(-1600.0, 1600.0, 25.0)
+    unit = np.array([600.0, 3000.0]) / math.hypot(600.0, 3000.0)
+    total = np.zeros(x.size)
+    for a in s:
+        total += point_pole_sp((x, y), x=E0 + 1500.0 + a * unit[0], y=N0 + 1000.0 + a * unit[1], depth_m=2.0,
+                               k_mv_m=-75.0)
+    return total
+
+
+@pytest.mark.slow
+def test_a_pipeline_across_a_fault_is_taken_by_a_buried_line_not_a_fault_patch():
+    # No fault source at all: a leaking pipeline (a row of shallow poles, not geosp's line
+    # formula) crosses the fault. It must not come out as a fault patch; a buried line
+    # along the pipe takes the anomaly.
+    stations, segments, _ = build_survey(white=3.0, seed=21, extra=_pipeline)
+    result = interpret_survey(stations, segments, **FAST)
+    assert _fault_rows(result) == []
+    lines = [r for r in result.fits.sources if r["model"] == "buried_line"]
+    assert lines and all(r["status"] == "cultural" for r in lines)
+    azimuth = math.degrees(math.atan2(600.0, 3000.0))
+    assert abs((lines[0]["strike_deg"] - azimuth + 90.0) % 180.0 - 90.0) < 10.0
+    assert lines[0]["line_k_mv"] < 0
+
+
 @pytest.mark.slow
 def test_deep_vertical_patch_with_a_contrast_is_not_put_shallow():
     # The wrong-basin case: a vertical patch 500 m deep with a conductivity
