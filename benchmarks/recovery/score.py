@@ -24,7 +24,7 @@ source, classed as
 * ``source-free fault``: its fault carries no planted patch;
 * ``elsewhere``: anything else.
 
-Rows of other models (``pole_pair``) are geosp saying "cultural or
+Rows of other models (``pole_pair``, ``buried_line``) are geosp saying "cultural or
 near-surface"; they are not claims of a fault source and are only counted.
 
 Depths are compared as elevations: a reported top depth refers to the
