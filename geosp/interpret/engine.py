@@ -649,7 +649,7 @@ def _try_source(context, state, sources, scan, threshold):
         rival, rival_best = _best_rival(context, rival_jobs, fitted[len(jobs):])
         if rival_best is not None:
             rival_gain = base_chi2 - rival_best[1]
-            note += f", {_rival_name(rival)} gain {rival_gain:.1f}"
+            note += f", {rival.label} gain {rival_gain:.1f}"
             # The burden of proof is on the cultural rival: sources on mapped
             # faults are what the survey is for, so the rival must fit clearly
             # better, whatever its number of parameters.
@@ -726,8 +726,9 @@ def _cultural_jobs(context, local, base_residual, window, base_models, base_ps):
     sub = model.subset(local.index)
     starts = []
     for extreme in (hi, lo):
+        directions = _line_directions(la[extreme], lc[extreme])
         for a in extreme:
-            for direction in _line_directions(la[extreme], lc[extreme]):
+            for direction in directions:
                 for z in (3.0, 15.0):
                     for length in (1000.0, 5000.0):
                         starts.append(np.clip([la[a], lc[a], direction, math.log(length), math.log(z)],
@@ -750,12 +751,6 @@ def _line_directions(s, t):
         axis = math.degrees(math.atan2(v[1, -1], v[0, -1]))
         out.append((axis + 90.0) % 180.0 - 90.0)
     return out
-
-
-def _rival_name(model):
-    if model.name == "buried_line":
-        return "buried-line"
-    return "pole" if model.single else "pole-pair"
 
 
 def _best_rival(context, rival_jobs, fitted):

@@ -50,7 +50,8 @@ class BuriedLine(SourceModel):
     """
 
     name = NAME
-    single = False
+    #: How the selection's history names this model.
+    label = "buried-line"
 
     def __init__(self, frame, along, across, box, *, min_depth_m=2.0, min_length_m=200.0):
         self.frame = frame

@@ -73,6 +73,11 @@ class PolePair(SourceModel):
         self.upper = np.array([s1, t1, zhi, half, half, zhi])
 
 
+    @property
+    def label(self):
+        """How the selection's history names this model."""
+        return "pole" if self.single else "pole-pair"
+
     def natural(self, p):
         pos = (float(p[0]), float(p[1]), math.exp(p[2]))
         if self.single:
