@@ -272,9 +272,17 @@ def bridge_covariance(c, total):
 def dense_covariance(parts):
     """The dense matrix of :meth:`NetworkCovariance.parts`."""
     chain = parts["chain"]
-    out = parts["u"] @ parts["q"] @ parts["u"].T
-    same = (chain[:, None] >= 0) & (chain[:, None] == chain[None, :])
-    return out + np.where(same, bridge_covariance(parts["c"], parts["total"]), 0.0)
+    u = parts["u"]
+    out = u @ parts["q"] @ u.T if u.shape[1] else np.zeros((chain.size, chain.size))
+    # bridges only couple stations of one chain: fill those blocks alone
+    on_chain = np.flatnonzero(chain >= 0)
+    order = on_chain[np.argsort(chain[on_chain], kind="stable")]
+    cuts = np.flatnonzero(np.diff(chain[order])) + 1
+    c, total = parts["c"], parts["total"]
+    for members in np.split(order, cuts):
+        if members.size:
+            out[np.ix_(members, members)] += bridge_covariance(c[members], total[members])
+    return out
 
 
 def _series_chains(n, f, t, obs, var, junction):

@@ -109,18 +109,42 @@ def solve(design, data):
     return coef / scale, gram_inverse / np.outer(scale, scale), float(residual @ residual)
 
 
-def match_scores(projected_columns, projected_data):
+def match_scores(columns, data, project=None, column_norm2=None):
     """
     Matched-filter statistics z = gᵀr / ‖g‖ of projected whitened columns
-    against the projected whitened data: each z is N(0, 1) when the data are
-    the noise model's noise (physics notes §6).
+    g = P·c against the projected whitened data r = P·d: each z is N(0, 1)
+    when the data are the noise model's noise (physics notes §6).
+
+    Parameters
+    ----------
+    columns : (n, m) array
+        Whitened columns: already projected when ``project`` is None, else
+        raw, and projected implicitly: gᵀr = cᵀ(P·d) and ‖g‖² = ‖c‖² − ‖Qᵀc‖²
+        for P = I − QQᵀ, which never forms the (n, m) projected matrix.
+    data : (n,) or (n, k) array
+        Whitened data, projected when ``project`` is None.
+    project : Projector or None
+    column_norm2 : (m,) array or None
+        ‖c‖² of the raw columns, when known.
 
     Returns
     -------
     z : (m,) array (0 for columns with no part outside the nuisance span)
     norm : (m,) array, ‖g‖ (1/σ of the amplitude estimate)
     """
-    norm = np.sqrt(np.sum(projected_columns**2, axis=0))
+    if project is None:
+        norm2 = np.sum(columns**2, axis=0)
+    else:
+        data = project(data)
+        if column_norm2 is None:
+            column_norm2 = np.sum(columns**2, axis=0)
+        inside = project.q.T @ columns
+        norm2 = column_norm2 - np.sum(inside**2, axis=0)
+        # a column (nearly) inside the span: its difference is rounding only
+        norm2 = np.where(norm2 > 1e-12 * column_norm2, norm2, 0.0)
+    norm = np.sqrt(norm2)
     with np.errstate(invalid="ignore", divide="ignore"):
-        z = np.where(norm > 0, (projected_columns.T @ projected_data) / norm, 0.0)
+        num = columns.T @ data
+        z = np.where((norm > 0).reshape((-1,) + (1,) * (num.ndim - 1)),
+                     num / np.where(norm > 0, norm, 1.0).reshape((-1,) + (1,) * (num.ndim - 1)), 0.0)
     return z, norm
