@@ -44,6 +44,30 @@ def test_projector_is_orthogonal_to_its_columns_and_idempotent():
     npt.assert_allclose(project(pv), pv, atol=1e-12)
 
 
+def test_scores_with_an_implicit_projection_match_the_explicit_projection():
+    # Reference: each column and the data projected off the nuisance span as
+    # least-squares residuals from numpy.linalg.lstsq, then z = gᵀr / ‖g‖
+    # written out; the implicit form never builds the projected columns.
+    x, y, e = _points(400)
+    nuisance = nuisance_columns(x, y, e, Frame.of(x, y, e))
+    rng = np.random.default_rng(7)
+    columns = np.column_stack([np.exp(-((x - cx) ** 2 + (y - 1500) ** 2) / 300.0**2)
+                               for cx in (500.0, 1500.0, 2500.0)] + [nuisance[:, 1]])  # last: inside the span
+    data = rng.normal(size=(x.size, 3))
+
+    def off_span(v):
+        return v - nuisance @ np.linalg.lstsq(nuisance, v, rcond=None)[0]
+
+    g, r = off_span(columns), off_span(data)
+    norm = np.linalg.norm(g, axis=0)
+    z, got_norm = match_scores(columns, data, Projector(nuisance))
+    npt.assert_allclose(z[:3], (g[:, :3].T @ r) / norm[:3, None], rtol=1e-9, atol=1e-12)
+    npt.assert_allclose(got_norm[:3], norm[:3], rtol=1e-9)
+    assert got_norm[3] == 0.0 and np.all(z[3] == 0.0)  # no part outside the span: no score
+    z1, _ = match_scores(columns, data[:, 0], Projector(nuisance), np.sum(columns**2, axis=0))
+    npt.assert_allclose(z1, z[:, 0], rtol=1e-12)
+
+
 def test_matched_filter_scores_are_standard_normal_under_the_noise_model():
     # Reference: for whitened noise w ~ N(0, I) and a fixed unit direction u,
     # uᵀPw ~ N(0, 1) exactly; 4000 draws pin the variance to ±5 % (3 sd).
