@@ -200,11 +200,34 @@ def _doc_table(pooled_by_mode):
         ("±1σ of √(top·bottom) contains the truth", lambda p: _fmt(p["geo_coverage"])),
         ("terrain coefficient within 2 reported σ",
          lambda p: f"{_fmt(p['terrain_within_2sd'])} of {p['terrain_surveys']} surveys"),
+        ("seconds of `geosp run` per survey, median / largest (two surveys at a time on two cores)",
+         lambda p: _timing_cell(p, "run_seconds")),
+        ("the same per 3,000 stations", lambda p: _timing_cell(p, "seconds_per_3000")),
     ]
     for label, get in rows:
         cells = [get(pooled_by_mode[m]) if m in pooled_by_mode else "–" for m in ("reduced", "raw")]
         lines.append(f"| {label} | {cells[0]} | {cells[1]} |")
     return "\n".join(lines)
+
+
+def timing(scores):
+    """Median and largest wall time of the surveys' ``geosp run`` (s), whole and per 3,000 stations."""
+    import numpy as np
+
+    ran = [s for s in scores if s.get("exit_code") == 0 and s.get("n_stations")]
+    if not ran:
+        return {}
+    seconds = np.array([s["seconds"] for s in ran], float)
+    per = seconds * 3000.0 / np.array([s["n_stations"] for s in ran], float)
+    return {"run_seconds": [float(np.median(seconds)), float(seconds.max())],
+            "seconds_per_3000": [float(np.median(per)), float(per.max())]}
+
+
+def _timing_cell(pooled, key):
+    if key not in pooled:
+        return "–"
+    median, largest = pooled[key]
+    return f"{median:.0f} / {largest:.0f}"
 
 
 def write_accuracy_page(path, pooled_by_mode, *, n, seed0, command):
@@ -242,6 +265,7 @@ def main(argv=None):
             scores, pooled = run_benchmark(args.n, args.seed0, raw=raw, workers=args.workers, root=root,
                                            timeout=args.timeout)
             pooled["seconds"] = round(time.perf_counter() - t0, 1)
+            pooled.update(timing(scores))
             line = summary_line(pooled, raw=raw)
             print(line)
             pooled_by_mode[mode] = pooled

@@ -29,8 +29,8 @@ with
 
     {command}
 
-(about a minute of computing per survey on two cores; {n} surveys per mode, seeds {seed0} to
-{seed0 + n - 1}; measured {date.today().isoformat()}).
+({n} surveys per mode, seeds {seed0} to {seed0 + n - 1}, run two at a time on two cores; the time
+each survey took is in the last rows of the table; measured {date.today().isoformat()}).
 
 ## What is measured
 

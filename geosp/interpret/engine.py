@@ -508,11 +508,9 @@ def _fit_group(local, models, starts, *, max_nfev=100):
     (ps, chi2, strengths).
 
     Each evaluation computes the fields and their derivatives together and
-    whitens them in one triangular solve (the Jacobian the optimiser asks for
-    next at the same point then costs no whitening), in single precision
-    (:meth:`Whitener.rough`): the search only needs χ² to far better than
-    its noise, and the χ² and strengths returned are computed again in
-    double precision at the solution.
+    whitens them in one triangular solve: the solve reads the whole factor
+    whatever the number of columns, so the Jacobian the optimiser asks for
+    next at the same point comes at no extra whitening cost.
     """
     sizes = [m.k for m in models]
     cuts = np.cumsum([0] + sizes)
@@ -529,7 +527,7 @@ def _fit_group(local, models, starts, *, max_nfev=100):
 
     def evaluate(theta):
         fields, jacs = zip(*(m.jacobian(p) for m, p in zip(models, split(theta))))
-        both = local.project(local.white.rough(np.column_stack(fields + jacs)))
+        both = local.project(local.white(np.column_stack(fields + jacs)))
         a, dj = both[:, :n_models], both[:, n_models:]
         x, *_ = np.linalg.lstsq(a, local.target, rcond=None)
         cache.update(theta=theta.copy(), r=local.target - a @ x, x=x, a=a, dj=dj)

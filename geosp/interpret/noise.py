@@ -81,23 +81,9 @@ class Whitener:
 
     def __init__(self, covariance):
         self.factor = linalg.cholesky(covariance, lower=True, overwrite_a=True, check_finite=False)
-        self._factor32 = None
 
     def __call__(self, values):
         return linalg.solve_triangular(self.factor, values, lower=True, check_finite=False)
-
-    def rough(self, values):
-        """
-        W·values in single precision (rounding about 1e-7 of each column,
-        far below any noise), returned in double: twice as fast as
-        :meth:`__call__`, for an optimiser's search; the numbers reported
-        are computed again with :meth:`__call__`.
-        """
-        if self._factor32 is None:
-            self._factor32 = self.factor.astype(np.float32)
-        out = linalg.solve_triangular(self._factor32, np.asarray(values, np.float32), lower=True,
-                                      check_finite=False)
-        return out.astype(np.float64)
 
     def colour(self, white):
         """L·w: turns independent unit normals into draws of the noise."""
